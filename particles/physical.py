@@ -1,0 +1,81 @@
+"""Mapping droplets or grains given in physical units onto the dimensionless simulation.
+
+With the physical flow (kinematic viscosity nu, dissipation eps, fluid density rho_f, gravity g)
+and a particle of radius a, diameter d = 2a and density rho_p:
+
+    tau_p   = rho_p d^2 / (18 mu),  mu = rho_f nu        Stokes drag response time
+                                                           (Maxey & Riley 1983, Phys. Fluids 26)
+    eta     = (nu^3/eps)^(1/4), tau_eta = (nu/eps)^(1/2), u_eta = (nu eps)^(1/4)   (Pope 2000)
+    St      = tau_p / tau_eta                             Stokes number
+    v_s     = tau_p g                                     Stokes terminal velocity
+    S_v     = v_s / u_eta                                 settling parameter
+    Fr      = a_eta / g,  a_eta = (eps^3/nu)^(1/4)        Froude number
+    Re_p    = d v_s / nu                                  particle Reynolds number (settling)
+
+The simulation matches St and Fr: tau_p = St tau_eta(sim) and |g_sim| = a_eta(sim) / Fr, along
+`particles.gravity` (or -z when that is zero). The point-particle, linear-drag model needs
+Re_p < ~1, d < eta and rho_p / rho_f >> 1 (no added mass, pressure-gradient or history force).
+"""
+from __future__ import annotations
+
+import math
+
+
+def physical_numbers(radius, density, phys) -> dict:
+    nu, eps, rho_f, g = phys["viscosity"], phys["dissipation"], phys["fluid_density"], phys["gravity"]
+    d = 2.0 * radius
+    tau_p = density * d * d / (18.0 * rho_f * nu)
+    eta = (nu**3 / eps) ** 0.25
+    tau_eta = math.sqrt(nu / eps)
+    u_eta = (nu * eps) ** 0.25
+    a_eta = (eps**3 / nu) ** 0.25
+    v_s = tau_p * g
+    return {"tau_p": tau_p, "stokes": tau_p / tau_eta, "settling_velocity": v_s,
+            "settling_parameter": v_s / u_eta, "froude": a_eta / g if g > 0 else math.inf,
+            "reynolds_p": d * v_s / nu, "diameter_over_eta": d / eta, "density_ratio": density / rho_f,
+            "eta": eta, "tau_eta": tau_eta}
+
+
+def point_particle_warnings(name, num) -> list[str]:
+    w = []
+    if num["reynolds_p"] > 1.0:
+        w.append(f"set {name}: particle Reynolds number {num['reynolds_p']:.3g} > 1; linear "
+                 "Stokes drag underestimates the drag")
+    if num["diameter_over_eta"] > 1.0:
+        w.append(f"set {name}: diameter is {num['diameter_over_eta']:.3g} eta (> 1); the "
+                 "point-particle model does not hold")
+    if num["density_ratio"] < 10.0:
+        w.append(f"set {name}: density ratio {num['density_ratio']:.3g} is not >> 1; added mass, "
+                 "pressure-gradient and history forces are neglected")
+    return w
+
+
+def particle_lines(cfg, predicted) -> tuple[list[str], list[str]]:
+    """Lines for `eddybox check` describing every particle set, and warnings."""
+    p = cfg.data["particles"]
+    if not p["sets"]:
+        return [], []
+    lines = ["", f"particles (released at t = {p['release']:g}):"]
+    warn = []
+    tau_eta = predicted.get("tau_eta")
+    for s in p["sets"]:
+        order = s["interpolation"] or p["interpolation"]
+        if s["radius"] is not None:
+            num = physical_numbers(s["radius"], s["density"], p["physical"])
+            lines.append(
+                f"  {s['name']:12s} {s['count']:9d}  radius {s['radius']:.3g} m, density "
+                f"{s['density']:.4g} kg/m^3 -> tau_p = rho_p d^2/(18 mu) = {num['tau_p']:.3g} s, "
+                f"St = tau_p/tau_eta = {num['stokes']:.3g}, S_v = tau_p g/u_eta = "
+                f"{num['settling_parameter']:.3g}, Fr = a_eta/g = {num['froude']:.3g}, "
+                f"Re_p = d v_s/nu = {num['reynolds_p']:.3g}, d/eta = {num['diameter_over_eta']:.3g}")
+            warn += point_particle_warnings(s["name"], num)
+        elif s["stokes"] is not None:
+            tp = f", tau_p ~ {s['stokes'] * tau_eta:.3g} with the predicted tau_eta" if tau_eta else ""
+            kind = "tracers" if s["stokes"] == 0 else f"St = {s['stokes']:g}{tp}"
+            lines.append(f"  {s['name']:12s} {s['count']:9d}  {kind} (tau_eta measured at release)")
+        else:
+            kind = "tracers" if s["tau_p"] == 0 else f"tau_p = {s['tau_p']:g}"
+            st = f", St ~ {s['tau_p'] / tau_eta:.3g}" if tau_eta and s["tau_p"] else ""
+            lines.append(f"  {s['name']:12s} {s['count']:9d}  {kind}{st}")
+        lines[-1] += f", interpolation {order} points"
+    return lines, warn

@@ -1,0 +1,189 @@
+"""Statistics hooks: small objects with `due(t, step)` and `sample(sim)`, each owning its
+output file. Their schedules are part of the checkpointed state (`state` / `load_state`)."""
+from __future__ import annotations
+
+import math
+import os
+
+import h5py
+import numpy as np
+
+from . import fluid_stats
+from .output import Column, Fixed, SampleFile, file_attrs, write_xdmf
+
+
+class Schedule:
+    """Due at t = 0, every, 2 every, ... (the first step at or after each); `every` = 0 means
+    every step, None never."""
+
+    def __init__(self, every, start=0.0):
+        self.every = every
+        self.next = start
+
+    def due(self, t, step) -> bool:
+        if self.every is None:
+            return False
+        return self.every == 0 or t >= self.next - 1e-9 * max(self.every, 1e-300)
+
+    def done(self, t):
+        if self.every:
+            self.next = (math.floor(t / self.every + 1e-9) + 1) * self.every
+
+    def state(self):
+        return {"next": np.float64(self.next)}
+
+    def load_state(self, st):
+        self.next = float(st["next"])
+
+
+class Hook:
+    name = "hook"
+
+    def __init__(self, every):
+        self.schedule = Schedule(every)
+
+    def due(self, t, step):
+        return self.schedule.due(t, step)
+
+    def sample(self, sim):
+        raise NotImplementedError
+
+    def run(self, sim):
+        self.sample(sim)
+        self.schedule.done(sim.t)
+
+    def open(self, sim, resume_samples=None):
+        pass
+
+    def samples_written(self) -> int:
+        return 0
+
+    def state(self):
+        return self.schedule.state()
+
+    def load_state(self, st):
+        self.schedule.load_state(st)
+
+    def close(self):
+        pass
+
+
+class FluidSeriesHook(Hook):
+    """Writes /series/<name> in fluid.h5, one value per sample (see fluid_stats.SERIES)."""
+
+    name = "fluid"
+
+    def __init__(self, every, path):
+        super().__init__(every)
+        self.path = path
+        self.file = None
+
+    def open(self, sim, resume_samples=None):
+        if not sim.is_root:
+            return
+        cols = [Column(f"/series/{k}", u, d, dtype=np.int64 if k == "step" else np.float64,
+                       dims=["/series/time"]) for k, (u, d) in fluid_stats.SERIES.items()]
+        self.file = SampleFile(self.path, cols, attrs=file_attrs(sim.config.hash()),
+                               sample_scales=["/series/time"])
+        if resume_samples is None:
+            self.file.create()
+        else:
+            self.file.reopen(resume_samples)
+
+    def samples_written(self):
+        return self.file.n if self.file else 0
+
+    def sample(self, sim):
+        rec = sim.fluid_record()
+        if self.file is not None:
+            self.file.append({f"/series/{k}": rec[k] for k in fluid_stats.SERIES})
+
+    def close(self):
+        if self.file:
+            self.file.close()
+
+
+class SpectraHook(Hook):
+    """Writes /spectra/energy (samples x shells) with /spectra/k and /spectra/time."""
+
+    name = "spectra"
+
+    def __init__(self, every, path):
+        super().__init__(every)
+        self.path = path
+        self.file = None
+
+    def open(self, sim, resume_samples=None):
+        if not sim.is_root:
+            return
+        n_sh = fluid_stats.shell_count(sim.layout)
+        k = np.arange(n_sh) * sim.layout.k0
+        cols = [Column("/spectra/time", "T", "time of each spectrum", dims=["/spectra/time"]),
+                Column("/spectra/energy", "L^3 T^-2",
+                       "shell-summed energy spectrum E(k): energy of modes with |k|/k0 in "
+                       "[s-1/2, s+1/2), per unit wavenumber (divided by k0)",
+                       tail=(n_sh,), dims=["/spectra/time", "/spectra/k"]),
+                Column("/spectra/dissipation", "L^2 T^-3",
+                       "dissipation spectrum 2 nu k^2 E(k) times k0 (sums to eps)",
+                       tail=(n_sh,), dims=["/spectra/time", "/spectra/k"])]
+        fixed = [Fixed("/spectra/k", k, "L^-1", "shell centre wavenumber s k0", scale="k")]
+        self.file = SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
+                               sample_scales=["/spectra/time"])
+        self.file.create() if resume_samples is None else self.file.reopen(resume_samples)
+
+    def samples_written(self):
+        return self.file.n if self.file else 0
+
+    def sample(self, sim):
+        st = sim.spectral_stats()
+        if self.file is not None:
+            k0 = sim.layout.k0
+            k = np.arange(len(st["spectrum"])) * k0
+            e = st["spectrum"] / k0
+            self.file.append({"/spectra/time": sim.t, "/spectra/energy": e,
+                              "/spectra/dissipation": 2.0 * sim.nu * k**2 * e})
+
+    def close(self):
+        if self.file:
+            self.file.close()
+
+
+class FieldsHook(Hook):
+    """Velocity snapshots fields/field_<step>.h5 with an XDMF sidecar for ParaView.
+    Datasets ux, uy, uz are stored in (z, y, x) index order (x fastest), the order XDMF
+    expects for a 3DCoRectMesh; `velocity_hat` holds the global Fourier coefficients for
+    restarting from the field (fluid.initial.kind: file)."""
+
+    name = "fields"
+
+    def __init__(self, every, folder):
+        super().__init__(every)
+        self.folder = folder
+        self.count = 0
+
+    def sample(self, sim):
+        u = sim.layout.gather_physical(sim.nl.to_physical(sim.uh))
+        uh = sim.layout.gather_spectral(sim.uh)
+        if not sim.is_root:
+            return
+        os.makedirs(self.folder, exist_ok=True)
+        name = f"field_{sim.step:08d}.h5"
+        path = os.path.join(self.folder, name)
+        tmp = path + ".tmp"
+        with h5py.File(tmp, "w") as f:
+            for k, v in file_attrs(sim.config.hash()).items():
+                f.attrs[k] = v
+            f.attrs["time"], f.attrs["step"] = sim.t, sim.step
+            for c, comp in enumerate("xyz"):
+                d = f.create_dataset(f"u{comp}", data=np.ascontiguousarray(u[c].transpose(2, 1, 0)))
+                d.attrs["units"] = "L T^-1"
+                d.attrs["description"] = f"velocity component {comp}; index order (z, y, x)"
+            d = f.create_dataset("velocity_hat", data=uh)
+            d.attrs["units"] = "L T^-1"
+            d.attrs["description"] = ("normalised Fourier coefficients (3, kx, ky, kz>=0) of the "
+                                      "velocity, u(x) = sum_k u_k exp(i k.x)")
+            d.attrs["length"] = sim.layout.length
+        os.replace(tmp, path)
+        write_xdmf(name, path[:-3] + ".xdmf", sim.layout.n, sim.layout.length, sim.t,
+                   [(f"u{c}", f"/u{c}") for c in "xyz"])
+        self.count += 1

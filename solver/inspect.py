@@ -1,0 +1,81 @@
+"""`eddybox inspect`: a human summary of any eddybox output file or run folder."""
+from __future__ import annotations
+
+import os
+
+import h5py
+import numpy as np
+
+from .config import ConfigError
+
+
+def _attrs_line(f):
+    a = f.attrs
+    return (f"  written by eddybox {a.get('code_version', '?')} at {a.get('created', '?')}, "
+            f"config hash {a.get('config_hash', '?')}")
+
+
+def _series(f, lines):
+    g = f["series"]
+    n = g["time"].shape[0]
+    lines.append(f"  {n} samples, t = {g['time'][0]:.6g} .. {g['time'][-1]:.6g}" if n else "  no samples yet")
+    if n:
+        lines.append(f"  {'series':16s} {'units':10s} {'first':>12s} {'last':>12s} {'mean':>12s}")
+        for k, d in g.items():
+            v = d[...]
+            lines.append(f"  {k:16s} {d.attrs.get('units', ''):10s} {v[0]:12.5g} {v[-1]:12.5g} "
+                         f"{np.mean(v):12.5g}")
+
+
+def _generic(f, lines):
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset):
+            lines.append(f"  {name:40s} {str(obj.shape):18s} {obj.dtype}  "
+                         f"[{obj.attrs.get('units', '')}] {obj.attrs.get('description', '')}"[:150])
+
+    f.visititems(visit)
+
+
+def inspect_file(path) -> str:
+    lines = [f"{path}:"]
+    try:
+        f = h5py.File(path, "r", swmr=True)
+    except OSError as exc:
+        raise ConfigError(f"{path}: not a readable HDF5 file ({exc})") from None
+    with f:
+        if f.attrs.get("producer") != "eddybox":
+            raise ConfigError(f"{path}: an HDF5 file, but not one written by eddybox")
+        lines.append(_attrs_line(f))
+        if "series" in f:
+            _series(f, lines)
+        if "pairs" in f:
+            from particles.pairs_reader import summary_lines
+
+            lines += summary_lines(path)
+        elif "velocity_hat" in f:
+            a = f.attrs
+            if "step" in a:
+                lines.append(f"  t = {a.get('time')}, step {a.get('step')}, "
+                             f"grid {f['velocity_hat'].shape[1]}^3")
+            _generic(f, lines)
+        elif "series" not in f:
+            _generic(f, lines)
+    return "\n".join(lines)
+
+
+def inspect_path(path) -> str:
+    if not os.path.exists(path):
+        raise ConfigError(f"{path}: no such file or folder")
+    if os.path.isdir(path):
+        out = [f"run folder {path}:"]
+        files = [n for n in ("fluid.h5", "spectra.h5", "particles.h5", "pairs.h5")
+                 if os.path.exists(os.path.join(path, n))]
+        if not files and not os.path.exists(os.path.join(path, "config.yaml")):
+            raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")
+        ck = os.path.join(path, "checkpoints")
+        if os.path.isdir(ck):
+            out.append(f"  checkpoints: {', '.join(sorted(os.listdir(ck))) or 'none'}")
+        for n in files:
+            out.append(inspect_file(os.path.join(path, n)))
+        return "\n".join(out)
+    return inspect_file(path)
