@@ -29,7 +29,7 @@ class ForcedBand:
         self.source = np.concatenate([np.arange(len(self.ind)), np.nonzero(plane0)[0]])
         self.conj = np.concatenate([np.zeros(len(self.ind), bool), np.ones(plane0.sum(), bool)])
         #: number of forced modes in the full (both-signs) wavenumber space
-        self.n_full = int(keep.sum())
+        self.n_full = 2 * int(np.sum(iz > 0)) + int(np.sum(iz == 0))
         self.n_independent = len(self.ind)
         k0 = layout.k0
         self.k_ind = self.ind.astype(float) * k0

@@ -58,6 +58,7 @@ class SampleFile:
         self.sample_scales = set(sample_scales)
         self.f = None
         self.n = 0
+        self.counts = {}
 
     # -- life cycle ------------------------------------------------------------------------
     def create(self):
@@ -91,40 +92,46 @@ class SampleFile:
         f.swmr_mode = True
         self.f = f
         self.n = 0
+        self.counts = {p: 0 for p in self.columns}
         f.flush()
 
-    def reopen(self, keep: int | None = None):
-        """Open an existing file for appending, first dropping samples beyond `keep`."""
+    def reopen(self, keep=None):
+        """Open an existing file for appending, first dropping samples beyond `keep` (an int
+        for every column, or a dict column path -> samples to keep)."""
         try:
             f = h5py.File(self.path, "r+", libver="latest")
         except OSError as exc:
             raise OutputError(f"{self.path}: cannot reopen for appending ({exc})") from None
-        n = None
+        counts = {}
         for p in self.columns:
             if p not in f:
                 f.close()
                 raise OutputError(f"{self.path}: dataset {p} is missing; not a file of this run")
-            n = f[p].shape[0] if n is None else min(n, f[p].shape[0])
-        keep = n if keep is None else min(keep, n)
-        for p in self.columns:
-            f[p].resize(keep, axis=0)
+            have = f[p].shape[0]
+            want = keep.get(p, have) if isinstance(keep, dict) else (have if keep is None else keep)
+            counts[p] = min(have, int(want))
+            f[p].resize(counts[p], axis=0)
         f.swmr_mode = True
         self.f = f
-        self.n = keep
+        self.counts = counts
+        self.n = min(counts.values()) if counts else 0
         f.flush()
 
     def append(self, record: dict):
+        """Add one sample to each column named in `record` (others keep their length)."""
         f = self.f
         for p, value in record.items():
             d = f[p]
-            d.resize(self.n + 1, axis=0)
-            d[self.n] = value
-        self.n += 1
+            i = self.counts[p]
+            d.resize(i + 1, axis=0)
+            d[i] = value
+            self.counts[p] = i + 1
+        self.n = min(self.counts.values())
         f.flush()
 
-    def set_attrs(self, path, attrs):
-        # attributes cannot be written in SWMR mode; only used before `create` or by readers
-        raise NotImplementedError
+    def write_fixed(self, path, value):
+        """Overwrite a fixed-shape dataset (running averages); allowed in SWMR mode."""
+        self.f[path][...] = value
 
     def close(self):
         if self.f is not None:

@@ -1,0 +1,228 @@
+"""Particle sets in the run loop: seeding at the release time, one ETD step per fluid step,
+per-set statistics, checkpoint state.
+
+Per step (after the fluid has advanced from t_n to t_{n+1}):
+    predictor with u_n = u(x_n, t_n) (kept from the previous step)      -> x*, v*
+    u* = u(x*, t_{n+1}) interpolated from the new field                  -> corrector x_{n+1}, v_{n+1}
+    u(x_{n+1}, t_{n+1}) interpolated and kept for the next step's predictor
+so each step costs one inverse transform of the velocity and two interpolations per particle.
+See `particles.integrator` for the scheme (exact for frozen u, second order; tracers, tau_p = 0,
+reduce to Heun's method, the second-order RK scheme).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from . import integrator, interpolation
+from .physical import physical_numbers
+
+#: float64 arrays of 3 components kept per particle: x, v, u_seen, x*, v*, u*; plus an int64 id
+_ARRAYS_PER_PARTICLE = 6
+
+
+def bytes_per_particle() -> int:
+    return _ARRAYS_PER_PARTICLE * 3 * 8 + 8
+
+
+def ghost_field_bytes(cfg, ranks, layout) -> int:
+    return 0 if ranks == 1 else _ghost_bytes(cfg, ranks, layout)
+
+
+def _ghost_bytes(cfg, ranks, layout):  # filled in by the distributed particle layer
+    from .migration import ghost_field_bytes as gfb
+
+    return gfb(cfg, ranks, layout)
+
+
+class ParticleSet:
+    """One set: name, response time, gravity, interpolation order and the particle arrays."""
+
+    def __init__(self, spec: dict, index: int, defaults: dict, physical):
+        self.name = spec["name"]
+        self.index = index
+        self.count = spec["count"]
+        self.order = spec["interpolation"] or defaults["interpolation"]
+        g = spec["gravity"] if spec["gravity"] is not None else defaults["gravity"]
+        self.gravity = np.asarray(g, float)
+        self.stokes = spec["stokes"]
+        self.tau_p = spec["tau_p"]
+        self.physical = None
+        if spec["radius"] is not None:
+            self.physical = physical_numbers(spec["radius"], spec["density"], physical)
+            self.stokes = self.physical["stokes"]
+        self.released = False
+        self.ids = np.empty(0, np.int64)
+        self._alloc(0)
+
+    def _alloc(self, n):
+        self.x, self.v, self.u_seen = (np.zeros((n, 3)) for _ in range(3))
+        self.x_star, self.v_star, self.u_star = (np.zeros((n, 3)) for _ in range(3))
+
+    def resolve(self, tau_eta: float, a_eta: float):
+        """Fix tau_p (from St and the measured tau_eta) and, for physical sets, gravity."""
+        if self.tau_p is None:
+            self.tau_p = float(self.stokes) * tau_eta
+        elif self.stokes is None:
+            self.stokes = self.tau_p / tau_eta if tau_eta > 0 else float("nan")
+        if self.physical is not None:
+            g = self.gravity
+            direction = g / np.linalg.norm(g) if np.linalg.norm(g) > 0 else np.array([0.0, 0.0, -1.0])
+            froude = self.physical["froude"]
+            self.gravity = direction * (a_eta / froude if np.isfinite(froude) else 0.0)
+
+    def attrs(self) -> dict:
+        a = {"stokes": float(self.stokes), "tau_p": float(self.tau_p), "count": int(self.count),
+             "interpolation": int(self.order), "gravity": self.gravity.astype(float)}
+        if self.physical is not None:
+            for k, v in self.physical.items():
+                a[f"physical_{k}"] = float(v)
+        return a
+
+
+class ParticleSystem:
+    def __init__(self, cfg: dict, layout, sim):
+        p = cfg["particles"]
+        self.layout = layout
+        self.release = p["release"]
+        self.seed = cfg["seed"]
+        self.length = cfg["grid"]["length"]
+        self.n = cfg["grid"]["points"]
+        self.h = self.length / self.n
+        self.sets = [ParticleSet(s, i, p, p["physical"]) for i, s in enumerate(p["sets"])]
+        self.released = False
+        self.release_scales = {}
+        self._frozen_field = None
+        if self.release <= 0.0:
+            self._seed(sim)
+
+    # -- the velocity field in physical space, as the interpolation kernels want it -----------
+    def _field(self, sim):
+        if sim.frozen and self._frozen_field is not None:
+            return self._frozen_field
+        u = sim.nl.to_physical(sim.uh)
+        if sim.frozen:
+            self._frozen_field = u.copy()
+            return self._frozen_field
+        return u
+
+    def _interp(self, field, s, pos, out):
+        interpolation.interpolate(field, (0, 0, 0), (self.n,) * 3, self.h, pos, s.order, out)
+
+    def _seed(self, sim):
+        sp = sim.spectral_stats()
+        eps = sp["dissipation"]
+        tau_eta = float(np.sqrt(sim.nu / eps)) if eps > 0 else float("inf")
+        a_eta = float((eps**3 / sim.nu) ** 0.25) if eps > 0 else 0.0
+        self.release_scales = {"tau_eta": tau_eta, "eta": (sim.nu**3 / eps) ** 0.25 if eps > 0 else float("inf"),
+                               "dissipation": eps, "time": sim.t}
+        field = self._field(sim)
+        first_id = 0
+        for s in self.sets:
+            rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0x9A27, s.index])))
+            s._alloc(s.count)
+            s.x[...] = rng.random((s.count, 3)) * self.length
+            s.x[s.x >= self.length] = 0.0
+            s.ids = np.arange(first_id, first_id + s.count, dtype=np.int64)
+            first_id += s.count
+            self._interp(field, s, s.x, s.u_seen)
+            s.resolve(tau_eta, a_eta)
+            s.v[...] = s.u_seen
+            s.released = True
+        self.released = True
+        sim.log.write(f"particles released at t={sim.t:.6g}: tau_eta={tau_eta:.4g}; "
+                      + ", ".join(f"{s.name} St={s.stokes:.3g} tau_p={s.tau_p:.3g}" for s in self.sets)) \
+            if hasattr(sim, "log") else None
+
+    # -- one step -----------------------------------------------------------------------------
+    def advance(self, sim, dt):
+        """Called after the fluid step from sim.t to sim.t + dt (sim.uh is already new)."""
+        if not self.released:
+            if sim.t + dt >= self.release - 1e-12:
+                t_save = sim.t
+                sim.t = sim.t + dt
+                self._seed(sim)
+                sim.t = t_save
+            return
+        field = self._field(sim)
+        for s in self.sets:
+            integrator.etd_predict(s.x, s.v, s.u_seen, s.tau_p, s.gravity, dt, self.length,
+                                   s.x_star, s.v_star)
+            self._interp(field, s, s.x_star, s.u_star)
+            integrator.etd_correct(s.x, s.v, s.u_seen, s.u_star, s.tau_p, s.gravity, dt, self.length)
+            self._interp(field, s, s.x, s.u_seen)
+
+    def finite(self) -> bool:
+        return all(np.isfinite(s.x).all() and np.isfinite(s.v).all() for s in self.sets)
+
+    # -- statistics ---------------------------------------------------------------------------
+    def q_field(self, sim):
+        """Second invariant Q = (||Omega||^2 - ||S||^2)/2 = -(1/2) A_ij A_ji of the velocity
+        gradient A_ij = du_i/dx_j on the grid (Pope 2000, ex. 6.? ; Squires & Eaton 1991)."""
+        from solver import spectral_ops as ops
+
+        lay = sim.layout
+        a, b, q = sim.nl.u[0], sim.nl.u[1], sim.nl.w[0]
+        q[...] = 0.0
+        for i in range(3):
+            for j in range(i, 3):
+                ops.derivative_component(sim.uh, lay.kx, lay.ky, lay.kz, i, j, lay.scratch)
+                lay.inverse(lay.scratch, a)
+                if i == j:
+                    q -= 0.5 * a * a
+                    continue
+                ops.derivative_component(sim.uh, lay.kx, lay.ky, lay.kz, j, i, lay.scratch)
+                lay.inverse(lay.scratch, b)
+                q -= a * b
+        return sim.nl.w[0:1]
+
+    def set_series(self, sim) -> dict:
+        """Per set: mean kinetic energy, slip, settling velocity, <Q> at the particles."""
+        out = {}
+        if not self.released:
+            return out
+        q = self.q_field(sim)
+        q_mean = float(q.mean())
+        for s in self.sets:
+            qp = np.empty((s.x.shape[0], 1))
+            self._interp(q, s, s.x, qp)
+            g = s.gravity
+            gn = np.linalg.norm(g)
+            ghat = g / gn if gn > 0 else np.array([0.0, 0.0, -1.0])
+            out[s.name] = {
+                "time": sim.t,
+                "kinetic_energy": 0.5 * float(np.mean(np.sum(s.v**2, axis=1))),
+                "slip_velocity": float(np.mean(np.linalg.norm(s.v - s.u_seen, axis=1))),
+                "settling_velocity": float(np.mean(s.v @ ghat)),
+                "q_particles": float(qp.mean()),
+                "q_volume": q_mean,
+            }
+        return out
+
+    # -- checkpoint ---------------------------------------------------------------------------
+    def state(self, sim) -> dict:
+        st = {"released": np.int8(self.released)}
+        for s in self.sets:
+            st[s.name] = {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen,
+                          "tau_p": np.float64(np.nan if s.tau_p is None else s.tau_p),
+                          "stokes": np.float64(np.nan if s.stokes is None else s.stokes),
+                          "gravity": s.gravity}
+        st["release_scales"] = {k: np.float64(v) for k, v in self.release_scales.items()}
+        return st
+
+    def load_state(self, sim, st):
+        self.released = bool(st["released"])
+        self.release_scales = {k: float(v) for k, v in st.get("release_scales", {}).items()}
+        for s in self.sets:
+            d = st[s.name]
+            n = d["x"].shape[0]
+            s._alloc(n)
+            s.ids = np.asarray(d["ids"], np.int64)
+            s.x[...], s.v[...], s.u_seen[...] = d["x"], d["v"], d["u_seen"]
+            s.tau_p = None if np.isnan(d["tau_p"]) else float(d["tau_p"])
+            s.stokes = None if np.isnan(d["stokes"]) else float(d["stokes"])
+            s.gravity = np.asarray(d["gravity"], float)
+            s.released = self.released
+
+    def inventory(self) -> dict:
+        return {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.x_star, s.v_star, s.u_star))
+                                 + s.ids.nbytes for s in self.sets)}
