@@ -55,7 +55,10 @@ class NonlinearTerm:
         """dst <- a dst + b P[u x omega](src); dst must be solenoidal and dealiased when
         a != 0. src may be dst. Returns max |u|+|v|+|w| of src in physical space."""
         if self.mode == 0:
-            self._once(src, dst, a, b, self.ones)
+            if src is dst and a == 0.0:
+                self._in_place(dst, b)
+            else:
+                self._once(src, dst, a, b, self.ones)
             return self.umax
         if src is dst:
             np.copyto(self._copy, src)
@@ -65,6 +68,23 @@ class NonlinearTerm:
         self._once(src, dst, 1.0, 0.5 * b, self.shift)
         self.umax = umax
         return umax
+
+    def _in_place(self, uh, b):
+        """uh <- b P[u x omega](uh) with the fewest passes: the vorticity transforms read uh,
+        the velocity transforms then consume uh itself (c2r destroys its input, and uh is
+        about to be overwritten), and the forward transforms write straight into uh."""
+        lx = self.layout
+        for c in range(3):
+            ops.curl_component(uh, lx.kx, lx.ky, lx.kz, c, lx.scratch, *self.ones)
+            lx.inverse(lx.scratch, self.w[c])
+        for c in range(3):
+            lx.inverse(uh[c], self.u[c])
+        ops.cross_in_place(self.u, self.w, self.rowmax)
+        self.umax = lx.max(float(self.rowmax.max()))
+        for c in range(3):
+            lx.forward(self.w[c], uh[c])
+        ops.scale_mask_project(uh, lx.kx, lx.ky, lx.kz, lx.ikx, lx.iky, lx.ikz, lx.n, self.mode,
+                               self.kc2, b * lx.norm)
 
     def _once(self, src, dst, a, b, shift):
         lx = self.layout

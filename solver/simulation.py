@@ -82,7 +82,7 @@ class Simulation:
         self.frozen = c["fluid"]["frozen"]
         self.nl = NonlinearTerm(self.layout, c["fluid"]["dealias"])
         self.scheme = SCHEMES[c["time"]["scheme"]](self.layout, self.nl, self.nu)
-        self.uh = np.zeros((3,) + self.layout.spec_shape, complex)
+        self.uh = self.scheme.alloc()
         self.forcing = make_forcing(c["forcing"], self.layout, c["seed"])
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None

@@ -83,8 +83,8 @@ def cross_in_place(u, w, rowmax):
                 w[1, i, j, l] = a2 * b0 - a0 * b2
                 w[2, i, j, l] = a0 * b1 - a1 * b0
                 s = abs(a0) + abs(a1) + abs(a2)
-                if s > m:
-                    m = s
+                if s > m or s != s:  # NaN must not hide from the maximum
+                    m = s if s == s else np.inf
         rowmax[i] = m
 
 
@@ -101,6 +101,30 @@ def accumulate_masked(dst, src, a, b, ikx, iky, ikz, n, mode, kc2, sx, sy, sz):
                     dst[i, j, l] = a * dst[i, j, l] + b * src[i, j, l] * s.conjugate()
                 else:
                     dst[i, j, l] = 0.0
+
+
+@njit(parallel=True, cache=True)
+def scale_mask_project(uh, kx, ky, kz, ikx, iky, ikz, n, mode, kc2, b):
+    """uh <- b P(k) uh inside the dealiasing region, 0 outside: one fused pass that finishes a
+    nonlinear term whose forward transforms were written straight into uh."""
+    half = n // 2
+    for i in prange(uh.shape[1]):
+        for j in range(uh.shape[2]):
+            for l in range(uh.shape[3]):
+                k2 = kx[i] * kx[i] + ky[j] * ky[j] + kz[l] * kz[l]
+                if k2 == 0.0 or not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2) or ikx[i] == -half \
+                        or iky[j] == -half or ikz[l] == half:
+                    uh[0, i, j, l] = 0.0
+                    uh[1, i, j, l] = 0.0
+                    uh[2, i, j, l] = 0.0
+                    continue
+                a0 = uh[0, i, j, l]
+                a1 = uh[1, i, j, l]
+                a2 = uh[2, i, j, l]
+                d = (kx[i] * a0 + ky[j] * a1 + kz[l] * a2) / k2
+                uh[0, i, j, l] = b * (a0 - kx[i] * d)
+                uh[1, i, j, l] = b * (a1 - ky[j] * d)
+                uh[2, i, j, l] = b * (a2 - kz[l] * d)
 
 
 @njit(parallel=True, cache=True)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import fft
 from . import spectral_ops as ops
 
 SCHEMES: dict[str, type] = {}
@@ -59,7 +60,10 @@ class Scheme:
         self.fac = _Factors(layout, nu, self.fractions)
 
     def alloc(self):
-        return np.zeros((3,) + self.layout.spec_shape, complex)
+        # aligned, so FFT plans can read and write the components in place
+        a = fft.empty_complex((3,) + self.layout.spec_shape)
+        a[...] = 0.0
+        return a
 
     def step(self, uh, forcing, choose_dt, sim):
         raise NotImplementedError

@@ -1,0 +1,188 @@
+"""`eddybox bench`: performance ratios measured side by side in one run on this machine.
+
+Sections (each a function returning a dict of named figures):
+  fluid      one RK4 step against the FFT floor (the same plans doing only the 36 real 3-D
+             transforms of a step), against a straightforward numpy.fft step with temporary
+             arrays, and peak memory per grid point for RK4 and low-storage RK3
+  particles  order-8 interpolation of three components (particles.bench_interp)
+  pairs      pair statistics against a cKDTree + numpy pipeline (particles.bench_pairs)
+  scaling    strong scaling over MPI ranks and bytes moved by the transposes
+  estimate   accuracy of `eddybox estimate` against measured runs
+"""
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+BENCHES: dict[str, callable] = {}
+
+
+def register(name):
+    def deco(fn):
+        BENCHES[name] = fn
+        return fn
+
+    return deco
+
+
+def _best(fn, repeats):
+    best = float("inf")
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def _sim(n, scheme="rk4", out=None, threads=None):
+    import tempfile
+
+    from .config import validate
+    from .simulation import Simulation
+
+    out = out or tempfile.mkdtemp(prefix="eddybox-bench-")
+    cfg = validate({"name": "bench", "grid": {"points": n}, "seed": 1,
+                    "fluid": {"viscosity": 0.01, "initial": {"kind": "spectrum", "energy": 0.5}},
+                    "time": {"scheme": scheme, "cfl": 0.5, "end": 1e9},
+                    "forcing": {"kind": "ou", "band": 2.0, "timescale": 1.0, "dissipation": 0.1},
+                    "stats": {"fluid": {"every": None}, "spectra": {"every": None}},
+                    "output": out})
+    return Simulation(cfg, overwrite=True, quiet=True)
+
+
+def numpy_reference_step(uh, kx, ky, kz, nu, dt, n):
+    """RK4 with integrating factor written the straightforward way: numpy.fft and temporary
+    arrays everywhere (what a first implementation looks like). Returns the new uh."""
+    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
+    kvec = [kx[:, None, None], ky[None, :, None], kz[None, None, :]]
+    k2s = np.where(k2 == 0, 1.0, k2)
+    ik = np.abs(np.fft.fftfreq(n, 1.0 / n))
+    keep = (3 * ik[:, None, None] < n) & (3 * ik[None, :, None] < n) & (3 * np.arange(n // 2 + 1)[None, None, :] < n)
+
+    def rhs(v):
+        u = np.fft.irfftn(v, s=(n, n, n), axes=(1, 2, 3)) * n**3
+        w = np.stack([1j * (kvec[1] * v[2] - kvec[2] * v[1]), 1j * (kvec[2] * v[0] - kvec[0] * v[2]),
+                      1j * (kvec[0] * v[1] - kvec[1] * v[0])])
+        w = np.fft.irfftn(w, s=(n, n, n), axes=(1, 2, 3)) * n**3
+        c = np.cross(u, w, axis=0)
+        ch = np.fft.rfftn(c, axes=(1, 2, 3)) / n**3 * keep
+        d = (kvec[0] * ch[0] + kvec[1] * ch[1] + kvec[2] * ch[2]) / k2s
+        return np.stack([ch[i] - kvec[i] * d for i in range(3)])
+
+    e = np.exp(-nu * k2 * dt)
+    eh = np.exp(-nu * k2 * dt / 2)
+    k1 = rhs(uh)
+    k2_ = rhs(eh * (uh + dt / 2 * k1))
+    k3 = rhs(eh * uh + dt / 2 * k2_)
+    k4 = rhs(e * uh + dt * eh * k3)
+    return e * uh + dt / 6 * (e * k1 + 2 * eh * k2_ + 2 * eh * k3 + k4)
+
+
+def _fluid_point(n, repeats, with_numpy):
+    sim = _sim(n)
+    sim.advance()  # compile kernels, warm caches
+    t_step = _best(sim.advance, repeats)
+    lay, nl = sim.layout, sim.nl
+
+    def floor():
+        for _ in range(4):
+            for c in range(3):
+                lay.inverse(lay.scratch, nl.u[c])
+            for c in range(3):
+                lay.inverse(lay.scratch, nl.w[c])
+            for c in range(3):
+                lay.forward(nl.w[c], lay.scratch)
+
+    t_floor = _best(floor, repeats)
+    out = {f"step_seconds_{n}": t_step, f"fft_floor_seconds_{n}": t_floor,
+           f"step_over_fft_floor_{n}": t_step / t_floor}
+    if with_numpy:
+        uh = sim.uh.copy()
+        t_np = _best(lambda: numpy_reference_step(uh, lay.kx, lay.ky, lay.kz, sim.nu, 1e-3, n),
+                     max(1, repeats // 2))
+        out[f"numpy_step_seconds_{n}"] = t_np
+        out[f"step_speedup_vs_numpy_{n}"] = t_np / t_step
+    return out
+
+
+def peak_bytes_per_point(n, scheme):
+    """Peak resident memory added by building a simulation and taking two steps, per grid
+    point, measured in a fresh process (baseline: after imports)."""
+    code = (
+        "import resource, sys\n"
+        "from solver import bench\n"
+        "import solver.simulation, particles.interpolation\n"
+        "r0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
+        f"s = bench._sim({n}, {scheme!r})\n"
+        "s.advance(); s.advance()\n"
+        "r1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
+        "print((r1 - r0) * 1024)\n")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=1800)
+    if r.returncode != 0:
+        raise RuntimeError(r.stderr[-2000:])
+    return int(r.stdout.strip().splitlines()[-1]) / n**3
+
+
+@register("fluid")
+def bench_fluid(quick=False):
+    sizes = (64,) if quick else (64, 128)
+    out = {}
+    for n in sizes:
+        out.update(_fluid_point(n, 2 if quick else 3, with_numpy=True))
+    big = sizes[-1]
+    out["step_over_fft_floor"] = out[f"step_over_fft_floor_{big}"]
+    out["step_speedup_vs_numpy"] = out[f"step_speedup_vs_numpy_{big}"]
+    out["bytes_per_point_rk4"] = peak_bytes_per_point(big, "rk4")
+    out["bytes_per_point_rk3"] = peak_bytes_per_point(big, "rk3")
+    out["bytes_per_point"] = out["bytes_per_point_rk4"]
+    return out
+
+
+@register("particles")
+def bench_particles(quick=False):
+    from particles.bench_interp import bench_interpolation
+
+    return bench_interpolation(n_particles=2 * 10**5 if quick else 10**6, n=64 if quick else 128)
+
+
+@register("pairs")
+def bench_pairs_section(quick=False):
+    from particles.bench_pairs import bench_pairs
+
+    return bench_pairs(n_particles=10**5 if quick else 10**6)
+
+
+def run_bench(quick=False, json_path=None, sections=None) -> int:
+    import platform
+
+    from .fft import available_cores, thread_count
+
+    results = {"machine": {"cores": available_cores(), "threads": thread_count(),
+                           "python": platform.python_version(), "quick": bool(quick)}}
+    for name, fn in BENCHES.items():
+        if sections and name not in sections:
+            continue
+        t0 = time.perf_counter()
+        print(f"[bench] {name} ...", flush=True)
+        try:
+            res = fn(quick=quick)
+        except Exception as exc:  # noqa: BLE001 - a failing section is reported, not fatal
+            res = {"error": f"{type(exc).__name__}: {exc}"}
+        res["section_seconds"] = time.perf_counter() - t0
+        results[name] = res
+        for k, v in res.items():
+            print(f"  {k:40s} {v:.4g}" if isinstance(v, (int, float)) else f"  {k:40s} {v}", flush=True)
+    if json_path:
+        with open(json_path, "w") as fh:
+            json.dump(results, fh, indent=2, default=float)
+        print(f"figures written to {json_path}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    run_bench(quick="--quick" in sys.argv)
