@@ -170,6 +170,8 @@ class Simulation:
         dt = c["cfl"] * self.dx / umax if umax > 1e-300 else (c["max_dt"] or c["cfl"] * self.dx)
         if c["max_dt"] is not None:
             dt = min(dt, c["max_dt"])
+        if self.t + dt > c["end"]:
+            dt = max(c["end"] - self.t, 1e-300)  # land on the end time exactly
         self.cfl = dt * umax / self.dx
         return dt
 
@@ -289,7 +291,7 @@ class Simulation:
 
     def _finished(self):
         c = self.config.data["time"]
-        if self.t >= c["end"] * (1 - 1e-12):
+        if self.t >= c["end"] - 1e-12 * max(1.0, abs(c["end"])):
             return "end time reached"
         if c["max_steps"] is not None and self.step >= c["max_steps"]:
             return "max_steps reached"
