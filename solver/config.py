@@ -62,6 +62,12 @@ class Num(Spec):
         return s + (", or null" if self.none_ok else "")
 
     def _check(self, key, v):
+        if isinstance(v, str):
+            # YAML 1.1 reads 1e-6 (no dot) as a string; accept plain numeric strings
+            try:
+                v = float(v) if not re.fullmatch(r"[+-]?\d+", v.strip()) else int(v)
+            except ValueError:
+                raise ConfigError(f"{key}: expected {self.allowed()}, got {v!r}") from None
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise ConfigError(f"{key}: expected {self.allowed()}, got {v!r}")
         if self.integer:

@@ -61,11 +61,12 @@ class SampleFile:
         self.counts = {}
 
     # -- life cycle ------------------------------------------------------------------------
-    def create(self):
+    def create(self, path=None, swmr=True):
+        path = path or self.path
         try:
-            f = h5py.File(self.path, "w", libver="latest")
+            f = h5py.File(path, "w", libver="latest")
         except OSError as exc:
-            raise OutputError(f"{self.path}: cannot create ({exc})") from None
+            raise OutputError(f"{path}: cannot create ({exc})") from None
         for k, v in self.attrs.items():
             f.attrs[k] = v
         for fx in self.fixed:
@@ -89,28 +90,50 @@ class SampleFile:
                 for axis, scale in enumerate(c.dims):
                     if scale and scale != c.path:
                         f[c.path].dims[axis].attach_scale(f[scale])
-        f.swmr_mode = True
+        if swmr:
+            f.swmr_mode = True
         self.f = f
         self.n = 0
         self.counts = {p: 0 for p in self.columns}
         f.flush()
 
     def reopen(self, keep=None):
-        """Open an existing file for appending, first dropping samples beyond `keep` (an int
-        for every column, or a dict column path -> samples to keep)."""
+        """Continue an existing file, first dropping samples beyond `keep` (an int for every
+        column, or a dict column path -> samples to keep).
+
+        The file is rebuilt rather than opened for writing: a writer killed in SWMR mode leaves
+        the file's consistency flags set, after which HDF5 refuses every open except a SWMR read.
+        The kept samples are copied into a fresh file (same layout, the original attributes),
+        which atomically replaces the old one."""
         try:
-            f = h5py.File(self.path, "r+", libver="latest")
+            old = h5py.File(self.path, "r", swmr=True)
         except OSError as exc:
-            raise OutputError(f"{self.path}: cannot reopen for appending ({exc})") from None
-        counts = {}
-        for p in self.columns:
-            if p not in f:
-                f.close()
-                raise OutputError(f"{self.path}: dataset {p} is missing; not a file of this run")
-            have = f[p].shape[0]
-            want = keep.get(p, have) if isinstance(keep, dict) else (have if keep is None else keep)
-            counts[p] = min(have, int(want))
-            f[p].resize(counts[p], axis=0)
+            raise OutputError(f"{self.path}: cannot read the existing output file ({exc})") from None
+        tmp = self.path + ".rebuild"
+        with old:
+            counts = {}
+            for p in self.columns:
+                if p not in old:
+                    raise OutputError(f"{self.path}: dataset {p} is missing; not a file of this run")
+                have = old[p].shape[0]
+                want = keep.get(p, have) if isinstance(keep, dict) else (have if keep is None else keep)
+                counts[p] = min(have, int(want))
+            attrs = dict(old.attrs)
+            self.create(path=tmp, swmr=False)
+            new = self.f
+            for k, v in attrs.items():
+                new.attrs[k] = v
+            for fx in self.fixed:
+                if fx.path in old and old[fx.path].shape == new[fx.path].shape:
+                    new[fx.path][...] = old[fx.path][...]
+            for p, n in counts.items():
+                new[p].resize(n, axis=0)
+                for i in range(0, n, 256):
+                    new[p][i:min(n, i + 256)] = old[p][i:min(n, i + 256)]
+            new.close()
+        fsync_path(tmp)
+        os.replace(tmp, self.path)
+        f = h5py.File(self.path, "r+", libver="latest")
         f.swmr_mode = True
         self.f = f
         self.counts = counts

@@ -30,6 +30,13 @@ def check_lines(cfg) -> list[str]:
                             f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * d['grid']['length'] / (2 * math.pi))})")
     else:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
+    from .timestepping import SCHEMES, spectral_cfl_bound
+
+    bound = spectral_cfl_bound(SCHEMES[d["time"]["scheme"]])
+    if d["time"]["cfl"] > bound:
+        warnings.append(f"time.cfl = {d['time']['cfl']} is above {bound:.2f}, the stability bound of "
+                        f"{d['time']['scheme']} for pseudo-spectral advection; the run may become "
+                        "unstable (exit code 3)")
     from particles.physical import particle_lines
 
     plines, pwarn = particle_lines(cfg, p)

@@ -36,6 +36,10 @@ from .timestepping import SCHEMES
 EXIT_DONE, EXIT_ERROR, EXIT_USAGE, EXIT_UNSTABLE, EXIT_STOPPED = 0, 1, 2, 3, 75
 
 
+#: the measured CFL number may exceed the scheme's limit by this factor before the run stops
+CFL_ALARM = 1.25
+
+
 class NumericalInstability(Exception):
     """The state became non-finite or the CFL number left the stable range."""
 
@@ -130,6 +134,12 @@ class Simulation:
                 with open(os.path.join(self.out, "config.yaml"), "w") as fh:
                     fh.write(config.to_yaml(scales.derived_block(config, self)))
         self.log.write(f"eddybox run: {config.summary()}")
+        from .timestepping import spectral_cfl_bound
+
+        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]])
+        if c["time"]["cfl"] > bound:
+            self.log.write(f"warning: time.cfl = {c['time']['cfl']} is above {bound:.2f}, the "
+                           "stability bound for pseudo-spectral advection; the run may become unstable")
         self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
                        f"{c['fluid']['dealias']}; output {self.out}")
 
@@ -162,11 +172,14 @@ class Simulation:
         if not np.isfinite(umax):
             raise NumericalInstability(
                 f"the velocity field is no longer finite at t={self.t:.6g} (step {self.step})")
-        if self.dt > 0 and umax * self.dt / self.dx > SCHEMES[c["scheme"]].cfl_limit:
+        limit = SCHEMES[c["scheme"]].cfl_limit
+        if self.dt > 0 and umax * self.dt / self.dx > CFL_ALARM * limit:
+            # the last step's dt against the new velocity: a jump this large within one step
+            # only comes from an instability (or a blow-up of the forcing)
             raise NumericalInstability(
-                f"CFL number {umax * self.dt / self.dx:.3g} exceeded the limit "
-                f"{SCHEMES[c['scheme']].cfl_limit} of scheme {c['scheme']} at t={self.t:.6g} "
-                f"(step {self.step}; max |u|+|v|+|w| = {umax:.4g})")
+                f"CFL number {umax * self.dt / self.dx:.3g} of the last step exceeded the limit "
+                f"{limit} of scheme {c['scheme']} by more than {100 * (CFL_ALARM - 1):.0f}% at "
+                f"t={self.t:.6g} (step {self.step}; max |u|+|v|+|w| = {umax:.4g}, dt = {self.dt:.4g})")
         dt = c["cfl"] * self.dx / umax if umax > 1e-300 else (c["max_dt"] or c["cfl"] * self.dx)
         if c["max_dt"] is not None:
             dt = min(dt, c["max_dt"])
