@@ -1,0 +1,70 @@
+"""`eddybox estimate`: memory equals the solver's own array inventory; the time model fits."""
+import math
+
+import numpy as np
+import pytest
+import yaml
+
+from solver import estimate as est
+from solver.cli import main
+from solver.inventory import live_inventory, predicted_inventory
+from solver.simulation import Simulation
+
+
+@pytest.mark.parametrize("scheme,dealias,particles", [("rk4", "two-thirds", False), ("rk3", "two-thirds", True),
+                                                       ("rk2", "phase-shift", True)])
+def test_memory_inventory_matches_live_arrays(config_factory, scheme, dealias, particles):
+    kw = dict(grid={"points": 24}, fluid={"viscosity": 0.05, "initial": {"kind": "taylor-green"},
+                                          "dealias": dealias},
+              time={"scheme": scheme, "cfl": 0.4, "end": 0.1})
+    if particles:
+        kw["particles"] = {"release": 0.0, "sets": [{"name": "a", "stokes": 1.0, "count": 300},
+                                                    {"name": "b", "tau_p": 0.0, "count": 200}]}
+    cfg = config_factory(**kw)
+    sim = Simulation(cfg, overwrite=True, quiet=True)
+    assert predicted_inventory(cfg.data) == live_inventory(sim)
+
+
+def test_time_model_reproduces_its_calibration_points():
+    a, b = 3.0e-10, 4.0e-9
+    pts = []
+    for n, scheme in ((16, "rk4"), (24, "rk3"), (32, "rk4"), (48, "rk2")):
+        n3 = n**3
+        s = est.STAGES[scheme]
+        pts.append({"n": n, "scheme": scheme, "step_seconds": s * (9 * a * n3 * math.log2(n3) + b * n3)})
+    fit = est.fit_fluid_model(pts)
+    assert fit["a"] == pytest.approx(a, rel=1e-8) and fit["b"] == pytest.approx(b, rel=1e-6)
+    cal = {"fluid_model": fit, "threads": 1, "umax_over_urms": 6.0}
+    for p in pts:
+        t, _ = est.step_time(cal, p["n"], 1, p["scheme"])
+        assert t == pytest.approx(p["step_seconds"], rel=1e-8)
+
+
+def test_estimate_table_and_scaling(tmp_path, capsys):
+    cfg = {"grid": {"points": 32}, "fluid": {"viscosity": 0.01},
+           "forcing": {"kind": "ou", "dissipation": 0.1, "band": 2.0},
+           "time": {"end": 10.0},
+           "particles": {"release": 1.0, "sets": [{"name": "d", "stokes": 1.0, "count": 1000}]},
+           "stats": {"pairs": {"every": 0.5}}}
+    path = tmp_path / "e.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    cal = tmp_path / "cal.json"
+    cal.write_text('{"fluid_model": {"a": 3e-10, "b": 4e-9}, "threads": 1, "umax_over_urms": 6.0, '
+                   '"created": "test"}')
+    assert main(["estimate", str(path), "--points", "256", "--ranks", "64", "--particles", "1000000",
+                 "--calibration", str(cal)]) == 0
+    out = capsys.readouterr().out
+    for word in ("memory per rank", "seconds per step", "core-hours", "assumptions", "InfiniBand"):
+        assert word in out
+    from solver.config import validate
+
+    c = validate(cfg).data
+    calib = est.load_calibration(str(cal))
+    e1 = est.estimate(c, 256, 1, cal=calib)
+    e8 = est.estimate(c, 256, 8, cal=calib)
+    assert e8["memory_per_rank"] < e1["memory_per_rank"] / 4  # plus transpose buffers and ghosts
+    assert e8["seconds_per_step"] < e1["seconds_per_step"]
+    # dt from the CFL condition: halving dx doubles the steps
+    e2 = est.estimate(c, 512, 8, cal=calib)
+    assert e2["steps"] == pytest.approx(2 * e8["steps"], rel=0.01)
+    assert main(["estimate", str(path), "--points", "255", "--ranks", "4", "--calibration", str(cal)]) == 2
