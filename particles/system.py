@@ -150,6 +150,9 @@ class ParticleSystem:
             self._interp(field, s, s.x_star, s.u_star)
             integrator.etd_correct(s.x, s.v, s.u_seen, s.u_star, s.tau_p, s.gravity, dt, self.length)
             self._interp(field, s, s.x, s.u_seen)
+            if s.tau_p == 0.0:
+                # a tracer's velocity is the fluid velocity where it is, not at the predictor
+                s.v[...] = s.u_seen
 
     def finite(self) -> bool:
         return all(np.isfinite(s.x).all() and np.isfinite(s.v).all() for s in self.sets)

@@ -187,6 +187,9 @@ def main(argv=None) -> int:
         code = _fail(comm, EXIT_USAGE, str(exc))
     except KeyboardInterrupt:
         code = _fail(comm, EXIT_STOPPED, "interrupted")
+    except BrokenPipeError:  # output piped into `head` and the like
+        sys.stdout = open(os.devnull, "w")
+        return EXIT_DONE
     except Exception as exc:  # noqa: BLE001 - the last line of defence: a message, not a trace
         from .checkpoint import CheckpointError
         from .output import OutputError
