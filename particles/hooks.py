@@ -42,6 +42,17 @@ class _LazyFileHook(Hook):
 
     def open(self, sim, resume_samples=None):
         self._resume = resume_samples
+        self._reopen_now(sim)
+
+    def _reopen_now(self, sim):
+        # on restart, take the file over at once (truncated to the checkpoint), so that a
+        # checkpoint written before the next sample still records the right counts
+        if (self._resume is not None and sim.is_root and os.path.exists(self.path)
+                and sim.particles is not None and sim.particles.released and self._ready()):
+            self._ensure_file(sim)
+
+    def _ready(self):
+        return True
 
     def _ensure_file(self, sim):
         if self.file is not None or not sim.is_root:
@@ -54,12 +65,23 @@ class _LazyFileHook(Hook):
         self._resume = None
 
     def samples_written(self):
-        return self.file.n if self.file else 0
+        if self.file is not None:
+            return self.file.n
+        pending = self._resume
+        if isinstance(pending, dict):
+            return min(pending.values()) if pending else 0
+        return int(pending or 0)
+
+    def _counts(self):
+        if self.file is not None:
+            return self.file.counts
+        return self._resume if isinstance(self._resume, dict) else None
 
     def state(self):
         st = super().state()
-        if self.file is not None:
-            st["counts"] = {_esc(p): np.int64(n) for p, n in self.file.counts.items()}
+        counts = self._counts()
+        if counts:
+            st["counts"] = {_esc(p): np.int64(n) for p, n in counts.items()}
         return st
 
     def load_state(self, st):
@@ -88,6 +110,7 @@ class ParticleHook(_LazyFileHook):
 
     def open(self, sim, resume_samples=None):
         self._resume = None if resume_samples is None else (self._resume_counts or resume_samples)
+        self._reopen_now(sim)
 
     def due(self, t, step):
         return self.schedule.due(t, step) or self.snap.due(t, step)
@@ -190,6 +213,14 @@ class PairHook(_LazyFileHook):
         nb = cfg_pairs["bins"]
         self.edges_units = (np.geomspace(r_min, r_max, nb + 1) if cfg_pairs["spacing"] == "log"
                             else np.linspace(0.0, r_max, nb + 1))
+        self.k_sub = None
+        if cfg_pairs["subsample_above"] is not None:
+            # snap once, in the configured units, so the subsampled bins never change
+            import warnings
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                self.k_sub, _ = pairs_kernel.snap_to_edge(self.edges_units, cfg_pairs["subsample_above"])
         self.wr_edges = None
         self.rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([cfg["seed"], 0x5A11])))
         self.running = {}
@@ -198,6 +229,10 @@ class PairHook(_LazyFileHook):
 
     def open(self, sim, resume_samples=None):
         self._resume = None if resume_samples is None else (self._resume_counts or resume_samples)
+        self._reopen_now(sim)
+
+    def _ready(self):
+        return self.wr_edges is not None
 
     def _unit(self, sim):
         if self.c["units"] == "box":
@@ -222,8 +257,7 @@ class PairHook(_LazyFileHook):
             rms = pairs_kernel.velocity_rms_1comp(np.concatenate([s.v for s in ps.sets]))
             self.wr_edges = pairs_kernel.wr_edges_from_rms(rms, self.c["wr_bins"])
         self._ensure_file(sim)
-        r_sub = self.c["subsample_above"]
-        r_sub = None if r_sub is None else r_sub * unit
+        r_sub = None if self.k_sub is None else r_edges[self.k_sub]
         subsets = {}
         if r_sub is not None:
             for s in ps.sets:
@@ -303,7 +337,7 @@ class PairHook(_LazyFileHook):
             gattrs[g] = {"set_a": a, "set_b": b, "n_a": st[a].count, "n_b": st[b].count,
                          "stokes_a": float(st[a].stokes), "stokes_b": float(st[b].stokes),
                          "r_units": self.c["units"], "spacing": self.c["spacing"],
-                         "subsample_above": float(self.c["subsample_above"] or 0.0)}
+                         "subsample_above": float(self.edges_units[self.k_sub]) if self.k_sub is not None else 0.0}
         return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
                           group_attrs=gattrs, sample_scales=scales)
 

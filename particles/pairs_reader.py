@@ -116,13 +116,13 @@ class WrPdf:
 
 def list_pair_groups(path) -> list[str]:
     """Names ``<a>__<b>`` of the groups under ``/pairs``."""
-    with h5py.File(path, "r") as f:
+    with h5py.File(path, "r", swmr=True) as f:  # SWMR: readable even after a killed run
         return sorted(f["pairs"].keys()) if "pairs" in f else []
 
 
 def read_pair_group(path, group: str) -> PairSeries:
     """Read one ``/pairs/<group>``, truncated to the samples every dataset holds."""
-    with h5py.File(path, "r") as f:
+    with h5py.File(path, "r", swmr=True) as f:  # SWMR: readable even after a killed run
         if "pairs" not in f or group not in f["pairs"]:
             raise KeyError(f"{path}: no group /pairs/{group}; found {list_pair_groups(path)}")
         g = f["pairs"][group]

@@ -89,7 +89,7 @@ def read_checkpoint(path):
                 raise CheckpointError(f"{path}: not an eddybox checkpoint")
             attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
             return f["velocity_hat"][...], attrs, _read_tree(f["state"])
-    except (OSError, KeyError) as exc:
+    except (OSError, KeyError, RuntimeError) as exc:
         raise CheckpointError(f"{path}: unreadable or truncated checkpoint ({exc})") from None
 
 
@@ -100,6 +100,6 @@ def latest_checkpoint(folder):
             with h5py.File(path, "r") as f:
                 if "velocity_hat" in f and "state" in f:
                     return path
-        except OSError:
+        except (OSError, RuntimeError):
             continue
     return None

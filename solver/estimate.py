@@ -107,21 +107,18 @@ def load_calibration(path=None):
     return None
 
 
-def transpose_bytes_per_transform(n, ranks, layout):
-    """Bytes each rank sends per 3-D transform (complex128 half spectrum)."""
+def transpose_bytes_per_transform(n, ranks, layout="auto"):
+    """Bytes each rank sends per 3-D transform and the messages it takes (the layout's own
+    buffer arithmetic, uneven blocks included)."""
     if ranks == 1:
         return 0.0, 0
-    local = n * n * (n // 2 + 1) * 16 / ranks
-    if layout == "slab":
-        return local * (ranks - 1) / ranks, ranks - 1
-    p1 = int(math.floor(math.sqrt(ranks)))
-    while ranks % p1:
-        p1 -= 1
-    p2 = ranks // p1
-    return local * ((p1 - 1) / p1 + (p2 - 1) / p2), (p1 - 1) + (p2 - 1)
+    from .mpi_layout import resolve_grid, transpose_bytes_sent
+
+    kind, (p1, p2) = resolve_grid(n, ranks, layout)
+    return float(transpose_bytes_sent(n, ranks, kind)), (p1 - 1) + (p2 - 1)
 
 
-def step_time(cal, n, ranks, scheme, layout="slab", particles=0, order=8, bandwidth=DEFAULT_BANDWIDTH,
+def step_time(cal, n, ranks, scheme, layout="auto", particles=0, order=8, bandwidth=DEFAULT_BANDWIDTH,
               latency=DEFAULT_LATENCY, pairs_per_step=0.0):
     """Predicted seconds per step and its parts."""
     m = cal["fluid_model"]
@@ -148,9 +145,14 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
         raise ConfigError(f"--ranks: expected a positive integer, got {ranks}")
     cfg = json.loads(json.dumps(cfg))
     cfg["grid"]["points"] = n
-    layout = "serial" if ranks == 1 else ("slab" if ranks <= n else "pencil")
-    if ranks > n * n:
-        raise ConfigError(f"--ranks: {ranks} ranks exceed the pencil limit N^2 = {n * n}")
+    layout = "serial"
+    if ranks > 1:
+        from .mpi_layout import resolve_grid
+
+        try:
+            layout, _ = resolve_grid(n, ranks, "auto")
+        except ConfigError as exc:
+            raise ConfigError(f"--ranks: {exc}") from None
     sets = cfg["particles"]["sets"]
     total_particles = particles if particles is not None else sum(s["count"] for s in sets)
     if particles is not None and sets:
@@ -188,7 +190,7 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
         npairs = sum(na * nb for na, nb in groups) * 4 / 3 * math.pi * r**3 / vol
         pairs_per_step = npairs / max(1.0, pr["every"] / dt)
     order = cfg["particles"]["interpolation"]
-    t, parts = step_time(cal, n, ranks, cfg["time"]["scheme"], layout if layout != "serial" else "slab",
+    t, parts = step_time(cal, n, ranks, cfg["time"]["scheme"], "auto",
                          -(-total_particles // 1) if sets else 0, order, bw, lat, pairs_per_step)
     threads = cal.get("threads", 1)
     return {"points": n, "ranks": ranks, "layout": layout, "particles": total_particles if sets else 0,

@@ -129,7 +129,7 @@ def from_file(cfg, layout, nonlinear, seed, uh):
             if abs(length - layout.length) > 1e-12 * layout.length:
                 raise InitialFieldError(f"{path}: box length {length} differs from grid.length {layout.length}")
             full = ds[...]
-    except OSError as exc:
+    except (OSError, RuntimeError) as exc:
         raise InitialFieldError(f"{path}: cannot read ({exc})") from None
     n = layout.n
     src_idx = np.fft.fftfreq(n_src, 1.0 / n_src).astype(int)

@@ -66,7 +66,7 @@ def inspect_file(path) -> str:
     lines = [f"{path}:"]
     try:
         f = h5py.File(path, "r", swmr=True)
-    except OSError as exc:
+    except (OSError, RuntimeError) as exc:
         raise ConfigError(f"{path}: not a readable HDF5 file ({exc})") from None
     with f:
         if f.attrs.get("producer") != "eddybox":

@@ -9,19 +9,17 @@ from .timestepping import SCHEMES
 COMPLEX, REAL = 16, 8
 
 
-def local_shapes(n: int, ranks: int = 1, layout: str = "serial"):
+def local_shapes(n: int, ranks: int = 1, layout: str = "serial", grid=None):
     """Largest local physical and Fourier block sizes (points) per rank."""
-    nh = n // 2 + 1
     if ranks == 1:
-        return n**3, n * n * nh
-    if layout == "slab":
-        b = -(-n // ranks)
-        return b * n * n, n * b * nh
-    p1 = int(np.floor(np.sqrt(ranks)))
-    while ranks % p1:
-        p1 -= 1
-    p2 = ranks // p1
-    return (-(-n // p1)) * (-(-n // p2)) * n, n * (-(-n // p1)) * (-(-nh // p2))
+        return n**3, n * n * (n // 2 + 1)
+    from .mpi_layout import Decomposition, resolve_grid
+
+    kind, pg = resolve_grid(n, ranks, layout, grid)
+    if kind == "serial":
+        return n**3, n * n * (n // 2 + 1)
+    g = Decomposition(n, pg, 0)
+    return int(np.prod(g.phys_shape)), int(np.prod(g.spec_shape))
 
 
 def predicted_inventory(cfg: dict, ranks: int = 1, layout: str = "serial",

@@ -291,8 +291,10 @@ class DistributedLayout:
         self._buffers = {name: fft.empty_complex(shape)
                          for name, shape in geo.buffer_shapes().items()}
         self._spares = {}
-        plan = lambda kind, a, b, axes: fft.Plan(kind, a, b, axes=axes, threads=fft_threads,  # noqa: E731
-                                                 backend=backend)
+
+        def plan(kind, a_in, a_out, axes):
+            return fft.Plan(kind, a_in, a_out, axes=axes, threads=fft_threads, backend=backend)
+
         b = self._buffers
         real = fft.empty_real(self.phys_shape)  # planning target only; callers' arrays are used
         cdt = MPI.C_DOUBLE_COMPLEX

@@ -16,7 +16,6 @@ import csv
 import datetime
 import html
 import math
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -27,10 +26,9 @@ import yaml
 
 from . import __version__
 from . import analysis
-from .config import ConfigError, differing_keys
+from .config import ConfigError
 
-GAUSSIAN = "unit Gaussian exp(-x²/2)/√(2π)"
-KOLMOGOROV_C = 1.5  # Kolmogorov constant of E(k) = C eps^(2/3) k^(-5/3); Pope (2000) eq. 6.239
+KOLMOGOROV_C = 1.5  # E(k) = C eps^(2/3) k^(-5/3) in the inertial range; Pope (2000) §6.5 (from memory)
 COLOURS = ["#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2",
            "#7f7f7f", "#bcbd22", "#17becf"]  # matplotlib's tab10, fixed so every figure agrees
 
@@ -168,7 +166,7 @@ def injection_fluctuation(s) -> Estimate:
     σ² = <(P - m)²> (ddof 0). Standard errors of m and of σ² are Flyvbjerg & Petersen (1989,
     J. Chem. Phys. 91:461) blocking errors of the means of P and of (P - m)², combined by
     first-order error propagation (the delta method; e.g. Bevington & Robinson 2003, Data
-    Reduction and Error Analysis, eq. 3.14), neglecting their covariance:
+    Reduction and Error Analysis, ch. 3), neglecting their covariance:
 
         dc = c sqrt( (d(σ²) / (2σ²))² + (dm / m)² ).
     """
@@ -203,12 +201,27 @@ def _open(path):
             raise ConfigError(f"{path}: not a readable HDF5 file ({exc})") from None
 
 
+def check_run_dir(run_dir):
+    """ConfigError naming `run_dir` unless it is a run folder (holds fluid.h5)."""
+    p = Path(run_dir)
+    if (p / "fluid.h5").is_file():
+        return
+    if p.is_file():
+        hint = "; it is a file: give run folders (for a sweep: SWEEP_DIR/*/)"
+    elif (p / "sweep_status.json").exists():
+        hint = f"; it is a sweep folder: give its runs, e.g. {p}/*/"
+    elif not p.exists():
+        hint = "; no such folder"
+    else:
+        hint = ""
+    raise ConfigError(f"{run_dir}: not an eddybox run folder (no fluid.h5){hint}")
+
+
 def read_fluid_series(run_dir) -> dict:
     """Every /series/<name> of RUN_DIR/fluid.h5, cut to the samples all of them hold (a run
     still writing, or killed between two appends, leaves them one sample apart)."""
+    check_run_dir(run_dir)
     path = Path(run_dir) / "fluid.h5"
-    if not Path(run_dir).is_dir() or not path.exists():
-        raise ConfigError(f"{run_dir}: not an eddybox run folder (no fluid.h5)")
     with _open(path) as f:
         if "series" not in f or "time" not in f["series"]:
             raise ConfigError(f"{path}: has no /series/time; not a fluid.h5 written by eddybox")
@@ -384,8 +397,19 @@ def _figure(width, height):
     return fig
 
 
+def _log_axis(axis):
+    """Log axis labelled 1, 2, 5, 10, ... in plain numbers: short ranges (less than a decade,
+    as r/eta often is) otherwise get crowded minor labels like 2x10^-1 3x10^-1."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    axis.set_minor_formatter(NullFormatter())
+
+
 def plot_timeseries(runs, path):
-    panels = [("energy", "E  [L² T⁻²]"), ("dissipation", "ε  [L² T⁻³]"), ("re_lambda", "Re$_\\lambda$")]
+    panels = [("energy", "E  [L² T⁻²]"), ("dissipation", "ε  [L² T⁻³]"),
+              ("re_lambda", "Re$_\\lambda$")]
     fig = _figure(11, 8.2)
     axes = fig.subplots(len(panels), 1, sharex=True)
     for ax, (key, label) in zip(axes, panels):
@@ -403,7 +427,8 @@ def plot_timeseries(runs, path):
                 ax.plot([t0, t1], [e.mean, e.mean], color=c, lw=2.5, alpha=0.6)
         ax.set_ylabel(label)
         ax.grid(alpha=0.3)
-    axes[0].legend(loc="best", fontsize=8, ncol=min(3, len(runs)))
+    axes[0].legend(loc="lower left", bbox_to_anchor=(0.0, 1.02), fontsize=8, frameon=False,
+                   ncol=max(1, min(len(runs), 3 if max(len(r.name) for r in runs) < 40 else 2)))
     axes[-1].set_xlabel("t  [T]")
     fig.savefig(path)
 
@@ -428,6 +453,7 @@ def plot_spectra(runs, path):
         drawn = True
     ax.axhline(KOLMOGOROV_C, color="k", ls="--", lw=1, label=f"C = {KOLMOGOROV_C} (Pope 2000)")
     ax.set_xscale("log")
+    _log_axis(ax.xaxis)
     ax.set_xlabel("k η")
     ax.set_ylabel("ε$^{-2/3}$ k$^{5/3}$ E(k)")
     ax.grid(alpha=0.3, which="both")
@@ -466,12 +492,22 @@ def plot_pairs(runs, group, path):
              title="collision kernel 2πr²g⟨|w$_r$|⟩")
     for ax in (ax_g, ax_p, ax_k):
         ax.grid(alpha=0.3, which="both")
-    ax_g.legend(fontsize=7)
-    ax_p.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=2, frameon=False)
+    _log_axis(ax_g.xaxis)
+    _log_axis(ax_k.xaxis)
+    # one legend under all three panels, so no panel is squeezed to make room for it
+    handles, labels = ax_p.get_legend_handles_labels()
+    longest = max(len(lb) for lb in labels)
+    ncol = max(1, min(3, len(labels), int(1200 // (5 * longest + 60))))  # ~5 px per character
+    fig.legend(handles, labels, loc="outside lower center", ncol=ncol, fontsize=8, frameon=False)
     fig.savefig(path)
 
 
 # --- tables and the page -------------------------------------------------------------------
+def _name(name: str) -> str:
+    """A run name for HTML, breakable after '__' and ',' (sweep folder names are long)."""
+    return html.escape(name).replace("__", "__<wbr>").replace(",", ",<wbr>")
+
+
 def _num(v, digits=4):
     return "n/a" if v is None or not np.isfinite(v) else f"{v:.{digits}g}"
 
@@ -504,19 +540,23 @@ def _groups(runs):
 
 
 def _pair_rows(runs):
-    """[(label, [Estimate or None per run])] for the small-r g and K of every set pair."""
+    """[(label, [Estimate or None per run], units)] for g and K in the smallest separation
+    bin of every set pair; runs whose smallest bin differs get rows of their own, so only
+    values at the same r are compared."""
     rows = []
     for g in _groups(runs):
         per = [next((p for p in r.pairs if p.group == g), None) for r in runs]
-        r0 = next(small_r(p)[0] for p in per if p is not None)
-        rows.append((f"g(r = {r0:.3g} η) [{html.escape(g)}]", [small_r(p)[1] if p else None for p in per], "1"))
-        rows.append((f"K(r = {r0:.3g} η) [{html.escape(g)}]", [small_r(p)[2] if p else None for p in per],
-                     "L³ T⁻¹"))
+        r0s = [None if p is None else float(f"{small_r(p)[0]:.6g}") for p in per]
+        for r0 in dict.fromkeys(r for r in r0s if r is not None):
+            same = [p if r == r0 else None for p, r in zip(per, r0s)]
+            where = f"(r = {r0:.3g} η) [{html.escape(g)}]"
+            rows.append((f"g{where}", [small_r(p)[1] if p else None for p in same], "1"))
+            rows.append((f"K{where}", [small_r(p)[2] if p else None for p in same], "L³ T⁻¹"))
     return rows
 
 
 def summary_table(runs) -> str:
-    head = "".join(f"<th>{html.escape(r.name)}</th>" for r in runs)
+    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
     rows = [f"<tr><th>quantity</th><th>units</th>{head}</tr>"]
     for q in QUANTITIES.values():
         cells = "".join(_cell(r.estimates[q.key]) for r in runs)
@@ -530,7 +570,7 @@ def summary_table(runs) -> str:
 
 def differences_table(runs) -> str:
     ref = runs[0]
-    head = "".join(f"<th>{html.escape(r.name)} − {html.escape(ref.name)}</th>" for r in runs[1:])
+    head = "".join(f"<th>{_name(r.name)} − {_name(ref.name)}</th>" for r in runs[1:])
     rows = [f"<tr><th>quantity</th>{head}</tr>"]
     items = [(q.label, [r.estimates[q.key] for r in runs]) for q in QUANTITIES.values()]
     items += [(label, ests) for label, ests, _ in _pair_rows(runs)]
@@ -555,8 +595,9 @@ def _config_brief(cfg: dict) -> str:
     f = cfg.get("forcing", {})
     fp = ", ".join(f"{k}={v}" for k, v in f.items() if k != "kind" and v is not None)
     g = cfg.get("grid", {})
+    forcing = f"{f.get('kind', '?')}({fp})" if fp else f.get("kind", "?")
     return (f"{g.get('points', '?')}³, ν={cfg.get('fluid', {}).get('viscosity', '?')}, forcing "
-            f"{f.get('kind', '?')}({fp}), seed {cfg.get('seed', '?')}")
+            f"{forcing}, seed {cfg.get('seed', '?')}")
 
 
 def _bare(cfg):
@@ -570,23 +611,38 @@ def runs_table(runs) -> str:
         t = r.series["time"]
         span = f"{t[0]:.4g} – {t[-1]:.4g}" if t.size else "no samples"
         sets = ", ".join(f"{html.escape(p.group)} ({p.n_samples})" for p in r.pairs) or "—"
-        rows.append(f'<tr><td><span class="sw" style="background:{COLOURS[i % len(COLOURS)]}">'
-                    f"</span>{html.escape(r.name)}</td><td class=\"t\"><code>{html.escape(str(r.path))}</code></td>"
+        rows.append(f'<tr><td class="t"><span class="sw" style="background:{COLOURS[i % len(COLOURS)]}">'
+                    f"</span>{_name(r.name)}</td>"
+                    f"<td class=\"t path\"><code>{html.escape(str(r.path))}</code></td>"
                     f"<td class=\"t\">{html.escape(_config_brief(r.config))}</td><td>{span}</td>"
                     f"<td>{t.size}</td><td class=\"t\">{sets}</td></tr>")
     table = "<table>" + "\n".join(rows) + "</table>"
-    keys = sorted({k for r in runs[1:] for k in differing_keys(_bare(runs[0].config), _bare(r.config))})
+    flat = [_flat_settings(_bare(r.config)) for r in runs]
+    keys = sorted({k for fl in flat[1:] for k in set(fl) | set(flat[0]) if fl.get(k) != flat[0].get(k)
+                   and any(f.get(k, "null") != "null" for f in flat)})  # not just unset vs null
     if not keys:
         return table
-    from .config import flat_keys
-
-    flat = [flat_keys(_bare(r.config)) for r in runs]
-    head = "".join(f"<th>{html.escape(r.name)}</th>" for r in runs)
+    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
     diff = [f"<tr><th>setting</th>{head}</tr>"] + [
         f"<tr><td><code>{html.escape(k)}</code></td>"
-        + "".join(f"<td>{html.escape(str(fl.get(k, '—')))}</td>" for fl in flat) + "</tr>"
+        + "".join(f"<td>{html.escape(fl.get(k, '—'))}</td>" for fl in flat) + "</tr>"
         for k in keys]
     return table + "<h3>Settings that differ between runs</h3><table>" + "\n".join(diff) + "</table>"
+
+
+def _flat_settings(d, prefix="") -> dict:
+    """Dotted key -> YAML text of the value; lists of mappings (particle sets) by index, as
+    --set and --vary address them (particles.sets.0.stokes)."""
+    out = {}
+    items = enumerate(d) if isinstance(d, list) else d.items()
+    for k, v in items:
+        key = f"{prefix}.{k}" if prefix else str(k)
+        if isinstance(v, dict) or (isinstance(v, list) and v and all(isinstance(x, dict) for x in v)):
+            out.update(_flat_settings(v, key))
+        else:
+            out[key] = yaml.safe_dump(v, default_flow_style=True, width=1000).strip()
+            out[key] = out[key][:-4] if out[key].endswith("\n...") else out[key]
+    return out
 
 
 CSS = """
@@ -596,7 +652,8 @@ h1{font-size:1.6em;margin-bottom:0.2em} h2{margin-top:1.6em;border-bottom:1px so
 padding-bottom:4px} h3{font-size:1.05em;margin-top:1.2em}
 table{border-collapse:collapse;margin:8px 0 12px;font-size:13px}
 th,td{border:1px solid #d0d0d0;padding:3px 8px;text-align:right;vertical-align:top;white-space:nowrap}
-th{background:#f2f2f2;text-align:center} td.q,td.t,td:first-child{text-align:left}
+th{background:#f2f2f2;text-align:center;white-space:normal;max-width:340px}
+td.path{word-break:break-all;min-width:160px} td.t{min-width:180px} td.q,td.t,td:first-child{text-align:left}
 td.t{white-space:normal} td.na{color:#999}
 td.sig{background:#ffe0dc;color:#a40000;font-weight:bold}
 sup.nc{color:#b35c00;cursor:help} code{font-size:12px}
@@ -609,7 +666,8 @@ sup.nc{color:#b35c00;cursor:help} code{font-size:12px}
 
 def _definitions() -> str:
     rows = ["<tr><th>quantity</th><th>units</th><th>definition</th></tr>"] + [
-        f'<tr><td class="q">{q.label}</td><td>{q.units}</td><td class="t">{html.escape(q.definition)}</td></tr>'
+        f'<tr><td class="q">{q.label}</td><td>{q.units}</td>'
+        f'<td class="t">{html.escape(q.definition)}</td></tr>'
         for q in QUANTITIES.values()]
     return "<table>" + "\n".join(rows) + "</table>"
 
@@ -664,8 +722,7 @@ def write_report(run_dirs, out_dir) -> Path:
     except ImportError:
         raise ImportError("eddybox report needs matplotlib (install the 'plot' extra)") from None
     for d in run_dirs:
-        if not (Path(d) / "fluid.h5").exists():
-            raise ConfigError(f"{d}: not an eddybox run folder (no fluid.h5)")
+        check_run_dir(d)
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise ConfigError(f"--out {out}: exists and is not a folder")
@@ -695,7 +752,7 @@ def write_report(run_dirs, out_dir) -> Path:
              "quantity for its definition, a † for the reason it is flagged.</p>",
              f'<div class="scroll">{summary_table(runs)}</div>']
     if len(runs) > 1:
-        parts += [f"<h2>Differences from {html.escape(runs[0].name)}</h2>",
+        parts += [f"<h2>Differences from {_name(runs[0].name)}</h2>",
                   '<p class="legend">difference ± combined standard error √(σ<sub>a</sub>² + '
                   'σ<sub>b</sub>²) (relative difference in brackets). <span class="sig" '
                   'style="background:#ffe0dc;color:#a40000;font-weight:bold;padding:0 4px">'

@@ -130,9 +130,10 @@ class Simulation:
         else:
             for h in self.hooks:
                 h.open(self, None)
+            derived = scales.derived_block(config, self)  # collective: every rank takes part
             if self.is_root:
                 with open(os.path.join(self.out, "config.yaml"), "w") as fh:
-                    fh.write(config.to_yaml(scales.derived_block(config, self)))
+                    fh.write(config.to_yaml(derived))
         self.log.write(f"eddybox run: {config.summary()}")
         from .timestepping import spectral_cfl_bound
 
@@ -272,14 +273,14 @@ class Simulation:
         self.wall_offset = float(attrs.get("wall_time", 0.0))
         self.forcing.load_state(state["forcing"])
         self.checkpoint_schedule.load_state(state["checkpoint_schedule"])
+        if self.particles is not None:
+            self.particles.load_state(self, state["particles"])
         for h in self.hooks:
             hs = state["hooks"].get(h.name)
             if hs is None:
                 raise ConfigError(f"--restart {path}: checkpoint has no state for {h.name}")
             h.load_state(hs)
             h.open(self, int(hs["samples_written"]))
-        if self.particles is not None:
-            self.particles.load_state(self, state["particles"])
         self.restart_from = path
 
     # ------------------------------------------------------------------ the loop

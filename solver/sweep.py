@@ -4,8 +4,9 @@
 
 Every combination (cartesian product) is validated before anything is written or launched.
 Each run lives in DIR/<key=value__key=value> and is a separate process
-(`python -m solver.cli run CONFIG --set ... --out FOLDER --quiet`), so runs are isolated and
-`--jobs` of them go at once. Invoking the same sweep again continues it:
+(`python -m solver.cli run CONFIG --set ... --out FOLDER --quiet`, terminal output in
+DIR/.console/), so runs are isolated and `--jobs` of them go at once. Invoking the same
+sweep again continues it:
 
     complete   log.txt ends with the 'done:' line and sweep_status.json records exit 0 for
                the same config hash                                   -> skipped
@@ -39,6 +40,7 @@ from .config import ConfigError, differing_keys
 from .fft import available_cores
 
 STATUS_FILE = "sweep_status.json"
+CONSOLE_DIR = ".console"
 EXIT_DONE, EXIT_STOPPED = 0, 75
 _SAFE = re.compile(r"[^A-Za-z0-9._=+\-]+")
 _RUN_MARKERS = ("config.yaml", "log.txt", "fluid.h5", "checkpoints")
@@ -128,8 +130,9 @@ def folder_name(values: dict) -> str:
     """'key=value__key=value' with anything but letters, digits and . _ = + - replaced."""
     parts = []
     for k, v in values.items():
-        part = _SAFE.sub("-", f"{k}={v}").strip("-")
-        parts.append(re.sub("_{2,}", "_", part))
+        # unsafe runs become one '-', dropped at the ends ('[0,0,-1]' -> '0-0--1', '-1' kept)
+        text = "-".join(p for p in _SAFE.split(str(v)) if p) or _digest({k: v})
+        parts.append(re.sub("_{2,}", "_", f"{k}={text}"))
     name = "__".join(parts)
     if len(name) > 180:  # stay well inside the 255-byte limit of a path component
         name = name[:160].rstrip("_-") + "-" + _digest(values)
@@ -142,16 +145,14 @@ def _digest(values: dict) -> str:
 
 def plan_runs(config_path, vary: list[str], set_pairs: list[str], out=None) -> tuple[Path, list[SweepRun]]:
     """Validate every combination and return (sweep folder, runs); nothing is written."""
-    base_raw = cfgmod.read_yaml(config_path)
-    base = cfgmod.validate(cfgmod.apply_overrides(base_raw, set_pairs), str(config_path))
+    base_raw = cfgmod.apply_overrides(cfgmod.read_yaml(config_path), set_pairs)
     axes = parse_vary(vary, set_pairs)
-    root = Path(out) if out else base.output
     runs, names = [], {}
     for combo in itertools.product(*[[(k, t) for t in texts] for k, texts in axes]):
         values = dict(combo)
         pairs = [f"{k}={t}" for k, t in combo]
         label = ", ".join(pairs)
-        raw = cfgmod.apply_overrides(base_raw, set_pairs)
+        raw = base_raw  # the base alone need not be valid: a --vary may supply a required key
         for k, t in combo:
             try:
                 raw = cfgmod.apply_overrides(raw, [f"{k}={t}"])
@@ -162,6 +163,7 @@ def plan_runs(config_path, vary: list[str], set_pairs: list[str], out=None) -> t
         except ConfigError as exc:
             keys = ", ".join(k for k, _ in axes)
             raise ConfigError(f"--vary {keys} (run {label}): {exc}") from None
+        root = Path(out) if out else cfg.output  # output cannot be varied: the same for all
         name = folder_name(values)
         if name in names:  # two value texts that differ only in unsafe characters
             name = f"{name}-{_digest(values)}"
@@ -273,8 +275,15 @@ class _StopFlag:
         self.signal = signal.Signals(signum).name
 
 
+def console_path(root, run) -> Path:
+    """Where a child's terminal output goes: a hidden folder, so `report ROOT/*/` sees only runs."""
+    return Path(root) / CONSOLE_DIR / f"{run.name}.txt"
+
+
 def _launch(config_path, run, root, env):
-    console = open(root / f"{run.name}.console.txt", "a" if run.action == "resume" else "w")
+    path = console_path(root, run)
+    path.parent.mkdir(exist_ok=True)
+    console = open(path, "a" if run.action == "resume" else "w")
     proc = subprocess.Popen(child_command(config_path, run), stdout=console,
                             stderr=subprocess.STDOUT, env=env)
     return proc, console, time.monotonic()
@@ -338,7 +347,7 @@ def _finish(entry, code, status, root, echo):
         "config_hash": run.config.hash(), "seconds": round(run.seconds, 3),
         "finished": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
     write_status(root, status)
-    tail = "" if code == EXIT_DONE else f" (see {root / (run.name + '.console.txt')})"
+    tail = "" if code == EXIT_DONE else f" (see {console_path(root, run)})"
     echo(f"  finished {run.name}: exit {code} after {run.seconds:.1f} s{tail}")
 
 
@@ -414,6 +423,7 @@ def run_sweep(args) -> int:
           f"time with {threads} thread(s) each")
     interrupted = execute(args.config, runs, root, jobs, threads, status)
     print(summary_table(runs, list(runs[0].values)))
+    print(f"compare the runs with: eddybox report {root}/*/ --out {root}-report")
     sys.stdout.flush()
     if interrupted:
         return EXIT_STOPPED
