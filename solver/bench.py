@@ -20,6 +20,8 @@ import time
 import numpy as np
 
 BENCHES: dict[str, callable] = {}
+#: the cost-model calibration measured by the `estimate` section, saved for `eddybox estimate`
+_LAST_CALIBRATION: dict = {}
 
 
 def register(name):
@@ -177,6 +179,18 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
         results[name] = res
         for k, v in res.items():
             print(f"  {k:40s} {v:.4g}" if isinstance(v, (int, float)) else f"  {k:40s} {v}", flush=True)
+    if _LAST_CALIBRATION:
+        from .estimate import calibration_path
+
+        cal = dict(_LAST_CALIBRATION)
+        if results.get("particles", {}).get("interp_particles_per_second"):
+            cal["interp_seconds_per_particle"] = 1.0 / results["particles"]["interp_particles_per_second"]
+        if results.get("pairs", {}).get("pairs_per_second"):
+            cal["pair_seconds"] = 1.0 / results["pairs"]["pairs_per_second"]
+        path = calibration_path()
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(cal, indent=2))
+        print(f"cost-model calibration written to {path} (used by eddybox estimate)")
     if json_path:
         with open(json_path, "w") as fh:
             json.dump(results, fh, indent=2, default=float)
@@ -186,3 +200,95 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
 
 if __name__ == "__main__":  # pragma: no cover
     run_bench(quick="--quick" in sys.argv)
+
+
+def _mpi_step_seconds(n, ranks, repeats=3, layout="auto"):
+    """Median-free best step time of an n^3 RK4 step on `ranks` MPI ranks (1 thread each),
+    and the bytes each rank sends per step in the transposes."""
+    code = (
+        "import json, os\n"
+        "from mpi4py import MPI\n"
+        "from solver import bench\n"
+        "from solver.config import validate\n"
+        "from solver.simulation import Simulation\n"
+        "import tempfile\n"
+        "comm = MPI.COMM_WORLD\n"
+        "out = comm.bcast(tempfile.mkdtemp(prefix='eddybox-scal-') if comm.rank == 0 else None)\n"
+        f"cfg = validate({{'name': 'scal', 'grid': {{'points': {n}}}, 'fluid': {{'viscosity': 0.01}},"
+        f" 'forcing': {{'kind': 'ou', 'band': 2.0, 'dissipation': 0.1}}, 'time': {{'end': 1e9}},"
+        f" 'stats': {{'fluid': {{'every': None}}, 'spectra': {{'every': None}}}},"
+        f" 'parallel': {{'layout': {layout!r}}}, 'output': out}})\n"
+        "sim = Simulation(cfg, overwrite=True, quiet=True, comm=comm if comm.size > 1 else None)\n"
+        "sim.advance()\n"
+        "import time\n"
+        "best = 1e30\n"
+        f"for _ in range({repeats}):\n"
+        "    comm.Barrier(); t0 = time.perf_counter(); sim.advance(); comm.Barrier()\n"
+        "    best = min(best, time.perf_counter() - t0)\n"
+        "moved = sim.layout.bytes_moved_per_transform() if hasattr(sim.layout, 'bytes_moved_per_transform') else 0\n"
+        "if comm.rank == 0: print(json.dumps({'seconds': best, 'bytes_per_transform': moved,"
+        " 'layout': sim.layout.summary()}))\n")
+    env = dict(os.environ, EDDYBOX_THREADS="1")
+    mpiexec = os.path.join(os.path.dirname(sys.executable), "mpiexec")
+    cmd = [mpiexec, "-n", str(ranks), sys.executable, "-c", code]
+    r = subprocess.run(cmd, capture_output=True, text=True, timeout=3600, env=env)
+    if r.returncode != 0:
+        raise RuntimeError(r.stderr[-2000:])
+    return json.loads(r.stdout.strip().splitlines()[-1])
+
+
+@register("scaling")
+def bench_scaling(quick=False):
+    """Strong scaling at 128^3 (64^3 with --quick) on 1, 2 and (oversubscribed) 4 ranks."""
+    n = 64 if quick else 128
+    out = {"scaling_points": n}
+    base = None
+    for p in (1, 2, 4):
+        res = _mpi_step_seconds(n, p, repeats=2 if quick else 3)
+        t = res["seconds"]
+        base = base or t
+        out[f"step_seconds_{p}_ranks"] = t
+        out[f"speedup_{p}_ranks"] = base / t
+        out[f"efficiency_{p}_ranks"] = base / t / p
+        # 4 stages x 9 transforms per RK4 step
+        out[f"transpose_bytes_per_step_{p}_ranks"] = 36 * res["bytes_per_transform"]
+    out["note_4_ranks"] = "4 ranks on 2 cores are oversubscribed: efficiency below 0.5 is expected"
+    return out
+
+
+@register("estimate")
+def bench_estimate(quick=False):
+    """Relative error of `eddybox estimate` against measured 64^3 and 96^3 runs, with the model
+    calibrated only on other sizes (time) and the memory overhead taken from other sizes."""
+    from . import estimate as est
+    from .config import validate
+    from .inventory import predicted_inventory
+
+    cal_sizes = (24, 32, 48, 80) if quick else (32, 48, 80, 112)
+    cal = est.calibrate(cal_sizes, save=False)
+    cfg = validate({"grid": {"points": 64}, "fluid": {"viscosity": 0.01},
+                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}}).data
+    over = []
+    for n in cal_sizes[:2]:
+        inv = sum(predicted_inventory(dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})).values())
+        over.append(peak_bytes_per_point(n, "rk4") * n**3 - inv)
+    cal["memory_overhead_bytes"] = float(np.median(over))
+    _LAST_CALIBRATION.clear()
+    _LAST_CALIBRATION.update(cal)
+    out = {"calibration_sizes": list(cal_sizes)}
+    t_err, m_err = [], []
+    for n in (64, 96):
+        measured = est.measure_fluid_points((n,))[0]["step_seconds"]
+        predicted, _ = est.step_time(cal, n, 1, "rk4")
+        mem_measured = peak_bytes_per_point(n, "rk4") * n**3
+        c = dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})
+        mem_predicted = sum(predicted_inventory(c).values()) + cal["memory_overhead_bytes"]
+        out[f"step_seconds_measured_{n}"] = measured
+        out[f"step_seconds_predicted_{n}"] = predicted
+        out[f"memory_measured_{n}"] = mem_measured
+        out[f"memory_predicted_{n}"] = mem_predicted
+        t_err.append(abs(predicted / measured - 1))
+        m_err.append(abs(mem_predicted / mem_measured - 1))
+    out["estimate_time_error"] = max(t_err)
+    out["estimate_memory_error"] = max(m_err)
+    return out

@@ -199,13 +199,13 @@ def main(argv=None) -> int:
         else:
             if os.environ.get("EDDYBOX_DEBUG"):
                 raise
-            code = _fail(comm, EXIT_ERROR, f"{type(exc).__name__}: {exc} (set EDDYBOX_DEBUG=1 "
-                                           "for a traceback)")
+            msg = f"{type(exc).__name__}: {exc} (set EDDYBOX_DEBUG=1 for a traceback)"
+            if comm is not None and comm.Get_size() > 1:
+                # an error on one rank only would leave the others waiting in a collective
+                print(f"eddybox: error on rank {comm.Get_rank()}: {msg}", file=sys.stderr, flush=True)
+                comm.Abort(EXIT_ERROR)
+            code = _fail(comm, EXIT_ERROR, msg)
     sys.stdout.flush()
-    if comm is not None:
-        # every rank reaches this point with the same code for config errors (they validate
-        # identically), so no rank is left waiting in a collective
-        pass
     return code
 
 

@@ -84,6 +84,15 @@ def calibrate(sizes=(16, 24, 32, 48), save=True, extra=None):
     cal = {"created": time.strftime("%Y-%m-%dT%H:%M:%S"), "threads": thread_count(),
            "fluid_points": pts, "fluid_model": fit_fluid_model(pts),
            "umax_over_urms": float(np.mean([p["umax_over_urms"] for p in pts]))}
+    # resident memory beyond the array inventory (interpreter, libraries, compiled kernels)
+    from .bench import peak_bytes_per_point
+    from .config import validate
+    from .inventory import predicted_inventory
+
+    n = sizes[-1]
+    c = validate({"grid": {"points": n}}).data
+    cal["memory_overhead_bytes"] = max(0.0, peak_bytes_per_point(n, "rk4") * n**3
+                                       - sum(predicted_inventory(c).values()))
     cal.update(extra or {})
     if save:
         path = calibration_path()
@@ -194,7 +203,8 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
                          -(-total_particles // 1) if sets else 0, order, bw, lat, pairs_per_step)
     threads = cal.get("threads", 1)
     return {"points": n, "ranks": ranks, "layout": layout, "particles": total_particles if sets else 0,
-            "memory_per_rank": sum(inv.values()), "inventory": inv, "dt": dt, "steps": steps,
+            "memory_per_rank": sum(inv.values()) + cal.get("memory_overhead_bytes", 0.0),
+            "inventory": dict(inv, process_overhead=cal.get("memory_overhead_bytes", 0.0)), "dt": dt, "steps": steps,
             "seconds_per_step": t, "parts": parts, "wall_seconds": t * steps,
             "core_hours": t * steps * ranks * threads / 3600.0, "threads_per_rank": threads,
             "u_rms": u, "umax": umax, "bandwidth": bw, "latency": lat,

@@ -68,10 +68,17 @@ class Progress:
 
     def update(self):
         now = time.monotonic()
-        if now - self.last < self.every or self.log.quiet:
+        due = now - self.last >= self.every
+        if self.sim.layout.size > 1:
+            due = self.sim.layout.bcast(due)  # the line needs a reduction: all ranks or none
+        elif self.log.quiet:
+            return
+        if not due:
             return
         self.last = now
         msg = self.line()
+        if self.log.quiet:
+            return
         if self.log.tty:
             self.log.live(msg)
         else:

@@ -104,8 +104,16 @@ class Simulation:
                 build_initial(c["fluid"]["initial"], self.layout, self.nl, c["seed"], self.uh)
             except InitialFieldError as exc:
                 raise ConfigError(f"fluid.initial.path: {exc}") from None
-        prepare_output(self.out, overwrite, restart is not None, self.is_root)
-        self.layout.barrier()
+        # the folder check runs on rank 0; its verdict reaches every rank, so all stop together
+        error = None
+        if self.is_root:
+            try:
+                prepare_output(self.out, overwrite, restart is not None, True)
+            except ConfigError as exc:
+                error = str(exc)
+        error = self.layout.bcast(error)
+        if error:
+            raise ConfigError(error)
 
         st = c["stats"]
         self.hooks = [FluidSeriesHook(st["fluid"]["every"], os.path.join(self.out, "fluid.h5")),
