@@ -16,6 +16,8 @@ import numpy as np
 from . import integrator, interpolation
 from .physical import physical_numbers
 
+#: steps between re-sorts of the particles by grid cell
+SORT_EVERY = 16
 #: float64 arrays of 3 components kept per particle: x, v, u_seen, x*, v*, u*; plus an int64 id
 _ARRAYS_PER_PARTICLE = 6
 
@@ -106,7 +108,20 @@ class ParticleSystem:
         return u
 
     def _interp(self, field, s, pos, out):
-        interpolation.interpolate(field, (0, 0, 0), (self.n,) * 3, self.h, pos, s.order, out)
+        # particles are kept in cell order (see `_sort_by_cell`), so no sort inside the call
+        interpolation.interpolate(field, (0, 0, 0), (self.n,) * 3, self.h, pos, s.order, out,
+                                  cell_sort=False)
+
+    def _sort_by_cell(self):
+        """Reorder every set by grid cell: neighbouring particles then share cache lines of
+        the interpolation stencils (about 3x faster at 128^3, see particles.bench_interp).
+        Ids move with their particles, so snapshots and checkpoints are unaffected."""
+        for s in self.sets:
+            if s.x.shape[0] < 1024:
+                continue
+            perm = interpolation.cell_order(s.x, np.full(3, self.h), np.full(3, self.n, np.int64))
+            for name in ("ids", "x", "v", "u_seen"):
+                setattr(s, name, np.ascontiguousarray(getattr(s, name)[perm]))
 
     def _seed(self, sim):
         sp = sim.spectral_stats()
@@ -144,6 +159,8 @@ class ParticleSystem:
                 sim.t = t_save
             return
         field = self._field(sim)
+        if sim.step % SORT_EVERY == 0:
+            self._sort_by_cell()
         for s in self.sets:
             integrator.etd_predict(s.x, s.v, s.u_seen, s.tau_p, s.gravity, dt, self.length,
                                    s.x_star, s.v_star)
