@@ -208,3 +208,22 @@ def test_forced_48_cube_reaches_stationary_state_with_negative_skewness(config_f
     first, second = np.array_split(e[late], 2)
     assert abs(first.mean() / second.mean() - 1) < 0.15
     assert -0.65 < np.mean(s[late]) < -0.35
+
+
+@pytest.mark.parametrize("scheme", ["rk4", "rk3", "rk2"])
+def test_time_step_allocates_nothing_grid_sized(config_factory, scheme):
+    # the hot loop works in place: the memory traced during a step is a few small bookkeeping
+    # arrays, far below one grid-sized array (tracemalloc sees numpy allocations)
+    import tracemalloc
+
+    sim = build(config_factory, grid={"points": 32},
+                fluid={"viscosity": 0.02, "initial": {"kind": "spectrum", "energy": 0.5}},
+                forcing={"kind": "ou", "band": 2.0, "timescale": 0.5, "dissipation": 0.1},
+                time={"scheme": scheme, "cfl": 0.4, "end": 10.0})
+    sim.advance()
+    tracemalloc.start()
+    for _ in range(3):
+        sim.advance()
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert peak < 16 * 1024 < sim.uh[0].nbytes / 16, peak  # one 32^3 component is 272 KiB
