@@ -101,7 +101,7 @@ def _comm():
 
 def cmd_run(args, comm=None):
     from . import config as cfgmod
-    from .simulation import NumericalInstability, Simulation
+    from .simulation import NumericalInstability, OutputWriteError, Simulation
 
     cfg = cfgmod.load(args.config, args.set)
     sim = Simulation(cfg, output=args.out, overwrite=args.overwrite, restart=args.restart, comm=comm,
@@ -112,6 +112,11 @@ def cmd_run(args, comm=None):
         if sim.is_root:
             print(f"eddybox: {exc}", file=sys.stderr)
         return EXIT_UNSTABLE
+    except OutputWriteError as exc:
+        print(f"eddybox: error: {exc}", file=sys.stderr, flush=True)
+        if comm is not None and comm.Get_size() > 1:
+            comm.Abort(EXIT_ERROR)  # only rank 0 writes: release the ranks waiting for it
+        return EXIT_ERROR
 
 
 def cmd_check(args, comm=None):

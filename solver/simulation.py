@@ -44,6 +44,10 @@ class NumericalInstability(Exception):
     """The state became non-finite or the CFL number left the stable range."""
 
 
+class OutputWriteError(Exception):
+    """An output or checkpoint file could not be written; the last checkpoint is intact."""
+
+
 class StoppedEarly(Exception):
     """A signal or the wall-time budget stopped the run after a checkpoint."""
 
@@ -368,6 +372,18 @@ class Simulation:
                    f"Last good checkpoint: {last or 'none'}")
             self.log.write(msg)
             raise NumericalInstability(msg) from None
+        except OSError as exc:
+            # disk full, permissions, a vanished folder: stop with the last good checkpoint
+            progress.close()
+            last = ckpt.latest_checkpoint(os.path.join(self.out, "checkpoints"))
+            msg = (f"writing output failed: {exc}. The run stopped at t={self.t:.6g} (step "
+                   f"{self.step}); last good checkpoint: {last or 'none'}. Free space or fix the "
+                   "folder, then resume with --restart latest")
+            try:
+                self.log.write(msg)
+            except OSError:
+                pass
+            raise OutputWriteError(msg) from None
         finally:
             self._restore_signals()
             self.close()
