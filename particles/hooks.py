@@ -11,6 +11,7 @@ import numpy as np
 from solver.hooks import Hook, Schedule
 from solver.output import Column, Fixed, SampleFile, file_attrs
 
+from . import migration
 from . import pairs as pairs_kernel
 
 SET_SERIES = {
@@ -130,15 +131,15 @@ class ParticleHook(_LazyFileHook):
                 self.file.append(rec)
             self.schedule.done(sim.t)
         if self.snap.due(sim.t, sim.step):
-            if self.file is not None:
-                rec = {}
-                for s in ps.sets:
-                    m = min(self.max_count, s.count)
-                    order = np.argsort(s.ids)[:m]
+            rec = {}
+            for s in ps.sets:
+                g = ps.snapshot(s, self.max_count)  # collective; the rows on rank 0 only
+                if g is not None:
                     rec[f"/sets/{s.name}/snapshots/time"] = sim.t
-                    rec[f"/sets/{s.name}/snapshots/position"] = s.x[order]
-                    rec[f"/sets/{s.name}/snapshots/velocity"] = s.v[order]
-                    rec[f"/sets/{s.name}/snapshots/fluid_velocity"] = s.u_seen[order]
+                    rec[f"/sets/{s.name}/snapshots/position"] = g["x"]
+                    rec[f"/sets/{s.name}/snapshots/velocity"] = g["v"]
+                    rec[f"/sets/{s.name}/snapshots/fluid_velocity"] = g["u_seen"]
+            if self.file is not None:
                 self.file.append(rec)
             self.snap.done(sim.t)
 
@@ -157,7 +158,7 @@ class ParticleHook(_LazyFileHook):
                             ("fluid_velocity", "fluid velocity u(x_p) at the particles")):
                 cols.append(Column(f"{snap}/{k}", "L" if k == "position" else "L T^-1", desc,
                                    tail=(m, 3), dims=[f"{snap}/time"]))
-            fixed.append(Fixed(f"{snap}/ids", np.sort(s.ids)[:m], "1",
+            fixed.append(Fixed(f"{snap}/ids", np.arange(s.first_id, s.first_id + m, dtype=np.int64), "1",
                                "ids of the particles in the snapshots (the same every time)"))
         scales = [f"/sets/{s.name}/series/time" for s in sim.particles.sets] + \
                  [f"/sets/{s.name}/snapshots/time" for s in sim.particles.sets]
@@ -234,17 +235,13 @@ class PairHook(_LazyFileHook):
     def _ready(self):
         return self.wr_edges is not None
 
-    def _unit(self, sim):
-        if self.c["units"] == "box":
-            return 1.0
-        eps = sim.spectral_stats()["dissipation"]
-        return (sim.nu**3 / eps) ** 0.25
-
     def sample(self, sim):
         ps = sim.particles
         if ps is None or not ps.released:
             return
-        unit = self._unit(sim)
+        eps = sim.spectral_stats()["dissipation"]  # collective
+        eta = (sim.nu**3 / eps) ** 0.25 if eps > 0 else float("inf")
+        unit = eta if self.c["units"] == "eta" else 1.0
         r_edges = self.edges_units * unit
         if r_edges[-1] >= 0.5 * self.length:
             sim.log.write(f"pair statistics skipped at t={sim.t:.6g}: r_max = "
@@ -254,15 +251,18 @@ class PairHook(_LazyFileHook):
         if self.wr_edges is None:
             # w_r edges from the rms of one velocity component of all particles at the first
             # sample, kept for the whole run so histograms can be summed over samples
-            rms = pairs_kernel.velocity_rms_1comp(np.concatenate([s.v for s in ps.sets]))
+            v = np.concatenate([s.v for s in ps.sets])
+            tot = sim.layout.sum(np.array([float(np.sum(v * v)), 3.0 * v.shape[0]]))
+            rms = float(np.sqrt(tot[0] / tot[1])) if tot[1] > 0 else 1.0
             self.wr_edges = pairs_kernel.wr_edges_from_rms(rms, self.c["wr_bins"])
         self._ensure_file(sim)
         r_sub = None if self.k_sub is None else r_edges[self.k_sub]
         subsets = {}
         if r_sub is not None:
+            # the subset is drawn by global id, so every layout picks the same particles
             for s in ps.sets:
-                m = min(self.c["subsample_count"], s.x.shape[0])
-                subsets[s.name] = np.sort(self.rng.choice(s.x.shape[0], size=m, replace=False))
+                m = min(self.c["subsample_count"], s.count)
+                subsets[s.name] = s.first_id + np.sort(self.rng.choice(s.count, size=m, replace=False))
         rec = {}
         for a, b in self.groups:
             sa, sb = sets[a], sets[b]
@@ -270,15 +270,17 @@ class PairHook(_LazyFileHook):
             sub = None
             if r_sub is not None:
                 sub = subsets[a] if same else (subsets[a], subsets[b])
-            smp = pairs_kernel.pair_statistics(sa.x, sa.v, self.length, r_edges, self.wr_edges,
-                                               None if same else sb.x, None if same else sb.v,
-                                               r_sub=r_sub, subsample=sub, rng=self.rng)
+            smp = migration.distributed_pair_statistics(
+                sim.layout, ps.blockmap, self.length, r_edges, self.wr_edges, sa.x, sa.v,
+                None if same else sb.x, None if same else sb.v, n_a_global=sa.count,
+                n_b_global=None if same else sb.count, ids_a=sa.ids, ids_b=None if same else sb.ids,
+                r_sub=r_sub, subsample_ids=sub)
             values = pairs_kernel.pairs_record(smp)
             g = f"/pairs/{a}__{b}"
             rec[f"{g}/time"] = sim.t
             for k in PAIR_COLUMNS:
                 if k == "eta":
-                    rec[f"{g}/eta"] = unit if self.c["units"] == "eta" else (sim.nu**3 / max(sim.spectral_stats()["dissipation"], 1e-300)) ** 0.25
+                    rec[f"{g}/eta"] = eta
                 elif k == "r_centres":
                     rec[f"{g}/r_centres"] = pairs_kernel.bin_centres(r_edges)
                 else:

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import integrator, interpolation
+from . import integrator, interpolation, migration
 from .physical import physical_numbers
 
 #: steps between re-sorts of the particles by grid cell
@@ -91,6 +91,18 @@ class ParticleSystem:
         self.n = cfg["grid"]["points"]
         self.h = self.length / self.n
         self.sets = [ParticleSet(s, i, p, p["physical"]) for i, s in enumerate(p["sets"])]
+        first = 0
+        for st in self.sets:
+            st.first_id = first
+            first += st.count
+        # across ranks: each rank owns the particles of its physical block and interpolates
+        # from its velocity block extended by ghost planes (particles.migration)
+        self.distributed = layout.size > 1
+        self.blockmap = migration.BlockMap(layout)
+        if self.distributed:
+            width = migration.ghost_width(max(st.order for st in self.sets))
+            self.ghost_u = migration.GhostField(layout, self.blockmap, 3, width)
+            self.ghost_q = migration.GhostField(layout, self.blockmap, 1, width)
         self.released = False
         self.release_scales = {}
         self._frozen_field = None
@@ -99,18 +111,29 @@ class ParticleSystem:
 
     # -- the velocity field in physical space, as the interpolation kernels want it -----------
     def _field(self, sim):
+        """The velocity for the interpolation: (array, start) of the whole grid (serial) or of
+        this rank's ghosted block."""
         if sim.frozen and self._frozen_field is not None:
             return self._frozen_field
         u = sim.nl.to_physical(sim.uh)
+        if self.distributed:
+            self.ghost_u.fill(u)
+            field = (self.ghost_u.array, self.ghost_u.start)
+        else:
+            field = (u, (0, 0, 0))
         if sim.frozen:
-            self._frozen_field = u.copy()
+            self._frozen_field = (field[0].copy(), field[1])
             return self._frozen_field
-        return u
+        return field
 
     def _interp(self, field, s, pos, out):
         # particles are kept in cell order (see `_sort_by_cell`), so no sort inside the call
-        interpolation.interpolate(field, (0, 0, 0), (self.n,) * 3, self.h, pos, s.order, out,
+        array, start = field
+        interpolation.interpolate(array, start, (self.n,) * 3, self.h, pos, s.order, out,
                                   cell_sort=False)
+
+    def _sum(self, x):
+        return self.layout.sum(x) if self.distributed else x
 
     def _sort_by_cell(self):
         """Reorder every set by grid cell: neighbouring particles then share cache lines of
@@ -134,11 +157,17 @@ class ParticleSystem:
         first_id = 0
         for s in self.sets:
             rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0x9A27, s.index])))
-            s._alloc(s.count)
-            s.x[...] = rng.random((s.count, 3)) * self.length
-            s.x[s.x >= self.length] = 0.0
-            s.ids = np.arange(first_id, first_id + s.count, dtype=np.int64)
+            # every rank draws the whole set and keeps its own: the same particles on any layout
+            x = rng.random((s.count, 3)) * self.length
+            x[x >= self.length] = 0.0
+            ids = np.arange(first_id, first_id + s.count, dtype=np.int64)
             first_id += s.count
+            if self.distributed:
+                mine = self.blockmap.owner(x, self.h) == self.layout.rank
+                x, ids = x[mine], ids[mine]
+            s._alloc(x.shape[0])
+            s.x[...] = x
+            s.ids = ids
             self._interp(field, s, s.x, s.u_seen)
             s.resolve(tau_eta, a_eta)
             s.v[...] = s.u_seen
@@ -170,9 +199,17 @@ class ParticleSystem:
             if s.tau_p == 0.0:
                 # a tracer's velocity is the fluid velocity where it is, not at the predictor
                 s.v[...] = s.u_seen
+        if self.distributed:
+            for s in self.sets:
+                got = migration.migrate(self.layout, self.blockmap, self.h,
+                                        {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen})
+                s._alloc(got["x"].shape[0])
+                s.ids = got["ids"]
+                s.x[...], s.v[...], s.u_seen[...] = got["x"], got["v"], got["u_seen"]
 
     def finite(self) -> bool:
-        return all(np.isfinite(s.x).all() and np.isfinite(s.v).all() for s in self.sets)
+        bad = sum(int(not (np.isfinite(s.x).all() and np.isfinite(s.v).all())) for s in self.sets)
+        return self._sum(bad) == 0
 
     # -- statistics ---------------------------------------------------------------------------
     def q_field(self, sim):
@@ -201,28 +238,47 @@ class ParticleSystem:
         if not self.released:
             return out
         q = self.q_field(sim)
-        q_mean = float(q.mean())
+        q_mean = float(self._sum(float(q.sum()))) / float(self.n) ** 3
+        if self.distributed:
+            self.ghost_q.fill(q)
+            qf = (self.ghost_q.array, self.ghost_q.start)
+        else:
+            qf = (q, (0, 0, 0))
         for s in self.sets:
             qp = np.empty((s.x.shape[0], 1))
-            self._interp(q, s, s.x, qp)
+            self._interp(qf, s, s.x, qp)
             g = s.gravity
             gn = np.linalg.norm(g)
             ghat = g / gn if gn > 0 else np.array([0.0, 0.0, -1.0])
+            sums = self._sum(np.array([0.5 * np.sum(s.v**2), np.sum(np.linalg.norm(s.v - s.u_seen, axis=1)),
+                                       np.sum(s.v @ ghat), np.sum(qp), float(s.x.shape[0])]))
+            n = max(sums[4], 1.0)
             out[s.name] = {
                 "time": sim.t,
-                "kinetic_energy": 0.5 * float(np.mean(np.sum(s.v**2, axis=1))),
-                "slip_velocity": float(np.mean(np.linalg.norm(s.v - s.u_seen, axis=1))),
-                "settling_velocity": float(np.mean(s.v @ ghat)),
-                "q_particles": float(qp.mean()),
+                "kinetic_energy": float(sums[0] / n),
+                "slip_velocity": float(sums[1] / n),
+                "settling_velocity": float(sums[2] / n),
+                "q_particles": float(sums[3] / n),
                 "q_volume": q_mean,
             }
         return out
+
+    def snapshot(self, s, max_count):
+        """The first `max_count` particles of set s by id, gathered in id order (rank 0;
+        None elsewhere)."""
+        mine = (s.ids - s.first_id) < max_count
+        return migration.gather_by_id(self.layout, s.ids[mine],
+                                      {"x": s.x[mine], "v": s.v[mine], "u_seen": s.u_seen[mine]})
 
     # -- checkpoint ---------------------------------------------------------------------------
     def state(self, sim) -> dict:
         st = {"released": np.int8(self.released)}
         for s in self.sets:
-            st[s.name] = {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen,
+            # global id order, so any layout can restart from it
+            g = migration.gather_by_id(self.layout, s.ids, {"x": s.x, "v": s.v, "u_seen": s.u_seen})
+            if g is None:
+                g = {"ids": s.ids[:0], "x": s.x[:0], "v": s.v[:0], "u_seen": s.u_seen[:0]}
+            st[s.name] = {"ids": g["ids"], "x": g["x"], "v": g["v"], "u_seen": g["u_seen"],
                           "tau_p": np.float64(np.nan if s.tau_p is None else s.tau_p),
                           "stokes": np.float64(np.nan if s.stokes is None else s.stokes),
                           "gravity": s.gravity}
@@ -234,15 +290,21 @@ class ParticleSystem:
         self.release_scales = {k: float(v) for k, v in st.get("release_scales", {}).items()}
         for s in self.sets:
             d = st[s.name]
-            n = d["x"].shape[0]
-            s._alloc(n)
-            s.ids = np.asarray(d["ids"], np.int64)
-            s.x[...], s.v[...], s.u_seen[...] = d["x"], d["v"], d["u_seen"]
+            rows = d
+            if d["x"].shape[0]:
+                rows = migration.scatter_by_owner(self.layout, self.blockmap, self.h, d["ids"],
+                                                  {"x": d["x"], "v": d["v"], "u_seen": d["u_seen"]})
+            s._alloc(rows["x"].shape[0])
+            s.ids = np.asarray(rows["ids"], np.int64)
+            s.x[...], s.v[...], s.u_seen[...] = rows["x"], rows["v"], rows["u_seen"]
             s.tau_p = None if np.isnan(d["tau_p"]) else float(d["tau_p"])
             s.stokes = None if np.isnan(d["stokes"]) else float(d["stokes"])
             s.gravity = np.asarray(d["gravity"], float)
             s.released = self.released
 
     def inventory(self) -> dict:
-        return {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.x_star, s.v_star, s.u_star))
-                                 + s.ids.nbytes for s in self.sets)}
+        inv = {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.x_star, s.v_star, s.u_star))
+                                + s.ids.nbytes for s in self.sets)}
+        if self.distributed:
+            inv["ghosted_velocity"] = self.ghost_u.array.nbytes
+        return inv
