@@ -146,7 +146,7 @@ def bench_pairs(n_particles: int = 10**5, n_grid: int = 128, r_max_eta: float = 
         "pairs_per_second": n_pairs / t_ours,
         "scipy_pairs_per_second": int(sub.counts.sum()) / t_ref,
         "pairs_speedup_vs_scipy": t_ref / t_ours_sub,
-        "pairs_peak_bytes": _peak_bytes(ours),
+        "pairs_peak_bytes": _peak_bytes(lambda: pair_statistics(sub_pos, sub_vel, box, r_edges, wr_edges)),
         "scipy_peak_bytes": _peak_bytes(
             lambda: scipy_pair_pipeline(sub_pos, sub_vel, box, r_edges, wr_edges)),
         "calibration_particles": n_cal,

@@ -156,7 +156,7 @@ def bench_particles(quick=False):
 def bench_pairs_section(quick=False):
     from particles.bench_pairs import bench_pairs
 
-    return bench_pairs(n_particles=10**5 if quick else 10**6)
+    return bench_pairs(n_particles=10**5 if quick else 10**6, repeats=2 if quick else 1)
 
 
 def run_bench(quick=False, json_path=None, sections=None) -> int:
