@@ -68,80 +68,76 @@ class Hook:
         pass
 
 
-class FluidSeriesHook(Hook):
-    """Writes /series/<name> in fluid.h5, one value per sample (see fluid_stats.SERIES)."""
+class FluidHook(Hook):
+    """fluid.h5: /series/<name>, one value per sample (see fluid_stats.SERIES), every
+    `stats.fluid.every`; /spectra/energy and /spectra/dissipation (samples x shells) with
+    /spectra/k and /spectra/time, every `stats.spectra.every`."""
 
     name = "fluid"
 
-    def __init__(self, every, path):
+    def __init__(self, every, spectra_every, path):
         super().__init__(every)
+        self.spectra = Schedule(spectra_every)
         self.path = path
         self.file = None
+        self._counts = None
 
     def open(self, sim, resume_samples=None):
         if not sim.is_root:
             return
         cols = [Column(f"/series/{k}", u, d, dtype=np.int64 if k == "step" else np.float64,
                        dims=["/series/time"]) for k, (u, d) in fluid_stats.SERIES.items()]
-        self.file = SampleFile(self.path, cols, attrs=file_attrs(sim.config.hash()),
-                               sample_scales=["/series/time"])
+        n_sh = fluid_stats.shell_count(sim.layout)
+        k = np.arange(n_sh) * sim.layout.k0
+        cols += [Column("/spectra/time", "T", "time of each spectrum", dims=["/spectra/time"]),
+                 Column("/spectra/energy", "L^3 T^-2",
+                        "shell-summed energy spectrum E(k): energy of the modes with |k|/k0 in "
+                        "[s-1/2, s+1/2), per unit wavenumber (divided by k0)",
+                        tail=(n_sh,), dims=["/spectra/time", "/spectra/k"]),
+                 Column("/spectra/dissipation", "L^2 T^-3",
+                        "dissipation spectrum 2 nu k^2 E(k) (times k0 it sums to eps)",
+                        tail=(n_sh,), dims=["/spectra/time", "/spectra/k"])]
+        fixed = [Fixed("/spectra/k", k, "L^-1", "shell centre wavenumber s k0", scale="k")]
+        self.file = SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
+                               sample_scales=["/series/time", "/spectra/time"])
         if resume_samples is None:
             self.file.create()
         else:
-            self.file.reopen(resume_samples)
+            self.file.reopen(self._counts or resume_samples)
+
+    def due(self, t, step):
+        return self.schedule.due(t, step) or self.spectra.due(t, step)
+
+    def run(self, sim):
+        if self.schedule.due(sim.t, sim.step):
+            rec = sim.fluid_record()  # collective
+            if self.file is not None:
+                self.file.append({f"/series/{k}": rec[k] for k in fluid_stats.SERIES})
+            self.schedule.done(sim.t)
+        if self.spectra.due(sim.t, sim.step):
+            st = sim.spectral_stats()  # collective
+            if self.file is not None:
+                k0 = sim.layout.k0
+                k = np.arange(len(st["spectrum"])) * k0
+                e = st["spectrum"] / k0
+                self.file.append({"/spectra/time": sim.t, "/spectra/energy": e,
+                                  "/spectra/dissipation": 2.0 * sim.nu * k**2 * e})
+            self.spectra.done(sim.t)
 
     def samples_written(self):
         return self.file.n if self.file else 0
 
-    def sample(self, sim):
-        rec = sim.fluid_record()
+    def state(self):
+        st = super().state()
+        st["spectra"] = self.spectra.state()
         if self.file is not None:
-            self.file.append({f"/series/{k}": rec[k] for k in fluid_stats.SERIES})
+            st["counts"] = {p.replace("/", "|"): np.int64(n) for p, n in self.file.counts.items()}
+        return st
 
-    def close(self):
-        if self.file:
-            self.file.close()
-
-
-class SpectraHook(Hook):
-    """Writes /spectra/energy (samples x shells) with /spectra/k and /spectra/time."""
-
-    name = "spectra"
-
-    def __init__(self, every, path):
-        super().__init__(every)
-        self.path = path
-        self.file = None
-
-    def open(self, sim, resume_samples=None):
-        if not sim.is_root:
-            return
-        n_sh = fluid_stats.shell_count(sim.layout)
-        k = np.arange(n_sh) * sim.layout.k0
-        cols = [Column("/spectra/time", "T", "time of each spectrum", dims=["/spectra/time"]),
-                Column("/spectra/energy", "L^3 T^-2",
-                       "shell-summed energy spectrum E(k): energy of modes with |k|/k0 in "
-                       "[s-1/2, s+1/2), per unit wavenumber (divided by k0)",
-                       tail=(n_sh,), dims=["/spectra/time", "/spectra/k"]),
-                Column("/spectra/dissipation", "L^2 T^-3",
-                       "dissipation spectrum 2 nu k^2 E(k) times k0 (sums to eps)",
-                       tail=(n_sh,), dims=["/spectra/time", "/spectra/k"])]
-        fixed = [Fixed("/spectra/k", k, "L^-1", "shell centre wavenumber s k0", scale="k")]
-        self.file = SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
-                               sample_scales=["/spectra/time"])
-        self.file.create() if resume_samples is None else self.file.reopen(resume_samples)
-
-    def samples_written(self):
-        return self.file.n if self.file else 0
-
-    def sample(self, sim):
-        st = sim.spectral_stats()
-        if self.file is not None:
-            k0 = sim.layout.k0
-            k = np.arange(len(st["spectrum"])) * k0
-            e = st["spectrum"] / k0
-            self.file.append({"/spectra/time": sim.t, "/spectra/energy": e,
-                              "/spectra/dissipation": 2.0 * sim.nu * k**2 * e})
+    def load_state(self, st):
+        super().load_state(st)
+        self.spectra.load_state(st["spectra"])
+        self._counts = {k.replace("|", "/"): int(v) for k, v in st.get("counts", {}).items()}
 
     def close(self):
         if self.file:

@@ -92,7 +92,7 @@ def inspect_path(path) -> str:
         raise ConfigError(f"{path}: no such file or folder")
     if os.path.isdir(path):
         out = [f"run folder {path}:"]
-        files = [n for n in ("fluid.h5", "spectra.h5", "particles.h5", "pairs.h5")
+        files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5")
                  if os.path.exists(os.path.join(path, n))]
         if not files and not os.path.exists(os.path.join(path, "config.yaml")):
             raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")

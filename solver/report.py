@@ -236,8 +236,8 @@ def fluid_estimates(series: dict, keys=None) -> dict:
 
 
 def read_spectra(run_dir):
-    """(k, time, E(k) samples x shells) from spectra.h5, or None."""
-    path = Path(run_dir) / "spectra.h5"
+    """(k, time, E(k) samples x shells) from fluid.h5, or None."""
+    path = Path(run_dir) / "fluid.h5"
     if not path.exists():
         return None
     with _open(path) as f:

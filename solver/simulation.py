@@ -26,7 +26,7 @@ from . import fft
 from . import fluid_stats, scales
 from . import spectral_ops as ops
 from .config import ConfigError, differing_keys
-from .hooks import FieldsHook, FluidSeriesHook, Schedule, SpectraHook
+from .hooks import FieldsHook, FluidHook, Schedule
 from .initial import InitialFieldError, build_initial
 from .layout import make_layout
 from .navier_stokes import NonlinearTerm
@@ -52,7 +52,7 @@ class StoppedEarly(Exception):
     """A signal or the wall-time budget stopped the run after a checkpoint."""
 
 
-RUN_FILES = ("config.yaml", "log.txt", "fluid.h5", "spectra.h5", "particles.h5", "pairs.h5")
+RUN_FILES = ("config.yaml", "log.txt", "fluid.h5", "particles.h5", "pairs.h5")
 
 
 def prepare_output(out, overwrite: bool, restart: bool, is_root=True):
@@ -120,8 +120,7 @@ class Simulation:
             raise ConfigError(error)
 
         st = c["stats"]
-        self.hooks = [FluidSeriesHook(st["fluid"]["every"], os.path.join(self.out, "fluid.h5")),
-                      SpectraHook(st["spectra"]["every"], os.path.join(self.out, "spectra.h5")),
+        self.hooks = [FluidHook(st["fluid"]["every"], st["spectra"]["every"], os.path.join(self.out, "fluid.h5")),
                       FieldsHook(st["fields"]["every"], os.path.join(self.out, "fields"))]
         self.particles = None
         if c["particles"]["sets"]:

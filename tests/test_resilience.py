@@ -12,7 +12,7 @@ import yaml
 
 from solver.cli import main
 
-OUTPUT_FILES = ("fluid.h5", "spectra.h5", "particles.h5", "pairs.h5")
+OUTPUT_FILES = ("fluid.h5", "particles.h5", "pairs.h5")
 
 FULL = {"name": "resilient", "seed": 13, "grid": {"points": 16},
         "fluid": {"viscosity": 0.03, "initial": {"kind": "spectrum", "energy": 0.5, "peak": 2}},

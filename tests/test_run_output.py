@@ -24,7 +24,7 @@ def run_dir(tmp_path_factory):
 
 
 def test_every_dataset_documented_and_files_stamped(run_dir):
-    for name in ("fluid.h5", "spectra.h5"):
+    for name in ("fluid.h5",):
         with h5py.File(run_dir / name, "r") as f:
             for k in ("config_hash", "code_version", "created"):
                 assert k in f.attrs
@@ -46,7 +46,7 @@ def test_every_dataset_documented_and_files_stamped(run_dir):
         t = f["series/time"][...]
         assert t[0] == 0.0 and t[-1] >= 0.3 - 1e-12 and np.all(np.diff(t) > 0)
         # E(k) sums to E at the same time (definition of the shell spectrum)
-    with h5py.File(run_dir / "spectra.h5", "r") as f:
+    with h5py.File(run_dir / "fluid.h5", "r") as f:
         k0 = f["spectra/k"][1]
         e_first = f["spectra/energy"][0].sum() * k0
     assert e_first == pytest.approx(0.5, rel=1e-10)
@@ -57,7 +57,7 @@ def test_xarray_sees_named_dimensions(run_dir):
     pytest.importorskip("h5netcdf")
     ds = xr.open_dataset(run_dir / "fluid.h5", engine="h5netcdf", group="series", phony_dims="access")
     assert "time" in ds.dims and ds["energy"].dims == ("time",)
-    sp = xr.open_dataset(run_dir / "spectra.h5", engine="h5netcdf", group="spectra", phony_dims="access")
+    sp = xr.open_dataset(run_dir / "fluid.h5", engine="h5netcdf", group="spectra", phony_dims="access")
     assert sp["energy"].dims == ("time", "k")
 
 

@@ -139,7 +139,7 @@ def check_ghosts(lay, bm, n, u, res):
     res["ghosted_axes"] = int(comm.allreduce(ghosted_axes))
 
 
-def check_particles(lay, bm, kind, grid, n, res):
+def check_particles(lay, bm, n, res):
     h = L / n
     blocks = comm.allgather((tuple(lay.phys_start), tuple(lay.phys_shape)))
     split = bm.split
@@ -215,16 +215,17 @@ def check_particles(lay, bm, kind, grid, n, res):
 
 
 def compare(dist, ref):
-    """Integers exactly and the same on every rank; sums to 1e-12 (sum_wr relative to sum |w_r|, whose terms it adds with
-    signs, so it may be near zero)."""
-    every_rank = comm.allgather((dist.counts.tobytes(), dist.wr_hist.tobytes(),
-                                 dist.sum_wr.tobytes(), dist.sum_trans.tobytes()))
-    same_everywhere = all(e == every_rank[0] for e in every_rank)
-    ints = same_everywhere and all(np.array_equal(getattr(dist, k), getattr(ref, k))
-               for k in ("counts", "wr_hist", "wr_under", "wr_over", "subsampled"))
+    """Integers exactly, and the whole result bitwise the same on every rank; sums to 1e-12
+    (sum_wr relative to sum |w_r|: it adds terms of both signs, so it may be near zero)."""
+    mine = (dist.counts.tobytes(), dist.wr_hist.tobytes(), dist.sum_wr.tobytes(),
+            dist.sum_trans.tobytes())
+    same_everywhere = all(e == mine for e in comm.allgather(mine))
+    ints = same_everywhere and all(np.array_equal(getattr(dist, k), getattr(ref, k)) for k in
+                                   ("counts", "wr_hist", "wr_under", "wr_over", "subsampled"))
     meta = (dist.n_a, dist.n_b, dist.m_a, dist.m_b, dist.r_sub, dist.same_set) == \
         (ref.n_a, ref.n_b, ref.m_a, ref.m_b, ref.r_sub, ref.same_set)
-    exp = np.array_equal(dist.expected, ref.expected) and np.array_equal(dist.rdf, ref.rdf, equal_nan=True)
+    exp = (np.array_equal(dist.expected, ref.expected)
+           and np.array_equal(dist.rdf, ref.rdf, equal_nan=True))
     err = 0.0
     for k in ("sum_wr2", "sum_abs", "sum_inward", "sum_trans"):
         a, b = getattr(dist, k), getattr(ref, k)
@@ -251,7 +252,8 @@ def check_pairs(lay, bm, out, g_x, g_v, g_ids, res):
     sub_a = 1000 + np.sort(rng.choice(na, na * 2 // 5, replace=False))
     sub_b = 1000 + na + np.sort(rng.choice(ng - na, (ng - na) // 3, replace=False))
     results = {}
-    for edges_name, r_edges in (("log", np.geomspace(0.05, 1.9, 13)), ("lin", np.linspace(0.0, 1.2, 9))):
+    edge_sets = (("log", np.geomspace(0.05, 1.9, 13)), ("lin", np.linspace(0.0, 1.2, 9)))
+    for edges_name, r_edges in edge_sets:
         for sub in (False, True):
             r_sub = r_edges[len(r_edges) // 2] if sub else None
             # one set (a)
@@ -286,10 +288,10 @@ def check_case(case):
     res = {"proc_grid": list(bm.proc_grid)}
     u = np.random.default_rng(1234 + n).standard_normal((3, n, n, n))
     check_ghosts(lay, bm, n, u, res)
-    cfg = {"grid": {"points": n}, "particles": {"interpolation": 8, "sets": [{"interpolation": None}]},
-           "parallel": {"grid": grid}}
+    cfg = {"grid": {"points": n}, "parallel": {"grid": grid},
+           "particles": {"interpolation": 8, "sets": [{"interpolation": None}]}}
     res["ghost_bytes_predicted"] = mig.ghost_field_bytes(cfg, size, kind)
-    out, g_x, g_v, g_ids = check_particles(lay, bm, kind, grid, n, res)
+    out, g_x, g_v, g_ids = check_particles(lay, bm, n, res)
     check_pairs(lay, bm, out, g_x, g_v, g_ids, res)
     return res
 
