@@ -227,3 +227,20 @@ def test_time_step_allocates_nothing_grid_sized(config_factory, scheme):
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     assert peak < 16 * 1024 < sim.uh[0].nbytes / 16, peak  # one 32^3 component is 272 KiB
+
+
+def test_numpy_fallback_transforms_equal_pyfftw():
+    # the numpy.fft fallback (used when pyFFTW is missing) gives the same unnormalised transforms
+    from solver.layout import SerialLayout
+
+    a = SerialLayout(12, 2 * np.pi, threads=1, backend="numpy")
+    b = SerialLayout(12, 2 * np.pi, threads=1)
+    x = np.random.default_rng(1).standard_normal(a.phys_shape)
+    sa, sb = np.empty(a.spec_shape, complex), np.empty(b.spec_shape, complex)
+    a.forward(x.copy(), sa)
+    b.forward(x.copy(), sb)
+    np.testing.assert_allclose(sa, sb, atol=1e-11)
+    ya, yb = np.empty(a.phys_shape), np.empty(b.phys_shape)
+    a.inverse(sa.copy(), ya)
+    b.inverse(sb.copy(), yb)
+    np.testing.assert_allclose(ya, yb, atol=1e-11)

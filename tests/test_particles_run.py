@@ -107,3 +107,33 @@ def test_tiny_response_time_is_stable_and_tends_to_tracers(config_factory):
     b.run()
     assert np.all(np.isfinite(a.particles.sets[0].v))
     np.testing.assert_allclose(a.particles.sets[0].x, b.particles.sets[0].x, atol=1e-7)
+
+
+def test_physical_units_map_to_stokes_and_froude(config_factory, capsys):
+    # Stokes drag: tau_p = rho_p d^2 / (18 mu) (any fluid-mechanics handbook); Kolmogorov scales
+    # (nu^3/eps)^(1/4), (nu/eps)^(1/2) (Pope 2000); a 20 um water droplet in air at eps = 0.01
+    from particles.physical import physical_numbers
+    from solver.report_check import check_lines
+
+    phys = {"viscosity": 1.5e-5, "dissipation": 0.01, "fluid_density": 1.2, "gravity": 9.81}
+    num = physical_numbers(10e-6, 1000.0, phys)
+    tau_p = 1000.0 * (20e-6) ** 2 / (18 * 1.2 * 1.5e-5)
+    assert num["tau_p"] == pytest.approx(tau_p, rel=1e-12)
+    assert num["stokes"] == pytest.approx(tau_p / np.sqrt(1.5e-5 / 0.01), rel=1e-12)
+    assert num["settling_velocity"] == pytest.approx(tau_p * 9.81, rel=1e-12)
+    assert num["froude"] == pytest.approx((0.01**3 / 1.5e-5) ** 0.25 / 9.81, rel=1e-12)
+    cfg = config_factory(particles={"release": 0.0, "gravity": [0.0, 0.0, -1.0], "physical": phys,
+                                    "sets": [{"name": "cloud", "radius": 10e-6, "density": 1000.0, "count": 200},
+                                             {"name": "hail", "radius": 1e-3, "density": 900.0, "count": 10}]},
+                         fluid={"viscosity": 0.05, "initial": {"kind": "taylor-green"}})
+    text = "\n".join(check_lines(cfg))
+    assert "St = tau_p/tau_eta" in text and "Fr = a_eta/g" in text
+    assert "particle Reynolds number" in text and "set hail" in text  # 2 mm hail breaks the model
+    sim = Simulation(cfg, overwrite=True, quiet=True)
+    cloud = sim.particles.sets[0]
+    tau_eta = sim.particles.release_scales["tau_eta"]
+    assert cloud.tau_p == pytest.approx(num["stokes"] * tau_eta, rel=1e-12)
+    # gravity along -z with |g| = a_eta(sim) / Fr: the Froude number is matched
+    eps = sim.particles.release_scales["dissipation"]
+    a_eta = (eps**3 / 0.05) ** 0.25
+    np.testing.assert_allclose(cloud.gravity, [0.0, 0.0, -a_eta / num["froude"]], rtol=1e-12)
