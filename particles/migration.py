@@ -19,6 +19,12 @@ planes are gathered from their owners with one Alltoallv per split axis, x then 
 stage sends the x-ghosted planes, so the corners are right); this also covers blocks thinner
 than the ghost width, whose ghosts come from ranks two or more blocks away.
 
+Method: spatial domain decomposition with ghost (halo) copies of everything within the
+interaction range of a block, as for short-range molecular dynamics (Plimpton 1995,
+J. Comput. Phys. 117, 1-19); applied to particles in pseudo-spectral turbulence with ghost
+layers of the velocity field for the interpolation stencil by Ireland et al. (2013,
+Comput. Fluids 76, 170-177).
+
 Every function here also accepts the serial layout (one process, no communicator); there all
 particles are rank 0's, nothing moves and halos are empty.
 """
@@ -128,21 +134,16 @@ def _axis_counts(ranges, n: int, w: int):
 def ghost_block_bytes(n: int, proc_grid, components: int, width: int) -> np.ndarray:
     """Bytes a `GhostField` allocates on every rank of a P1 x P2 grid (ghosted block plus its
     send and receive buffers), as an array indexed [p, q]."""
-    p1, p2 = (int(g) for g in proc_grid)
+    from solver.mpi_layout import split_range  # the layout's own block rule
+
     parts = []
-    for p in (p1, p2):
-        counts, starts = _split_range(n, p)
+    for p in proc_grid:
+        counts, starts = split_range(n, int(p))
         parts.append(_axis_counts([(s, s + c) for s, c in zip(starts, counts)], n, width))
     mx, nx, sx, rx = (a[:, None] for a in parts[0])
     my, ny, sy, ry = (a[None, :] for a in parts[1])
     points = mx * my + (sx + rx) * ny + (sy + ry) * mx  # x stage sends interior rows only
     return 8 * components * n * points
-
-
-def _split_range(n, parts):
-    from solver.mpi_layout import split_range
-
-    return split_range(n, parts)
 
 
 def ghost_field_bytes(cfg, ranks, layout) -> int:

@@ -112,22 +112,29 @@ def _fluid_point(n, repeats, with_numpy):
     return out
 
 
-def peak_bytes_per_point(n, scheme):
-    """Peak resident memory added by building a simulation and taking two steps, per grid
-    point, measured in a fresh process (baseline: after imports)."""
+def peak_rss_bytes(n, scheme):
+    """Peak resident memory of a fresh process that builds an n^3 simulation and takes two
+    steps (bytes)."""
     code = (
-        "import resource, sys\n"
+        "import resource\n"
         "from solver import bench\n"
-        "import solver.simulation, particles.interpolation\n"
-        "r0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
         f"s = bench._sim({n}, {scheme!r})\n"
         "s.advance(); s.advance()\n"
-        "r1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss\n"
-        "print((r1 - r0) * 1024)\n")
+        "print('PEAK_KB', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=1800)
-    if r.returncode != 0:
+    lines = [ln for ln in r.stdout.splitlines() if ln.startswith("PEAK_KB")]
+    if r.returncode != 0 or not lines:
         raise RuntimeError(r.stderr[-2000:])
-    return int(r.stdout.strip().splitlines()[-1]) / n**3
+    return int(lines[-1].split()[1]) * 1024
+
+
+def peak_bytes_per_point(n, scheme, n_small=None):
+    """Memory per grid point: the growth of the peak resident memory between an n_small^3 and
+    an n^3 run, divided by the growth in points (the interpreter, libraries and compiled
+    kernels cancel out; this is what decides whether 512^3 fits)."""
+    n_small = n_small or max(16, n // 4)
+    big, small = peak_rss_bytes(n, scheme), peak_rss_bytes(n_small, scheme)
+    return (big - small) / float(n**3 - n_small**3)
 
 
 @register("fluid")
@@ -271,7 +278,7 @@ def bench_estimate(quick=False):
     over = []
     for n in cal_sizes[:2]:
         inv = sum(predicted_inventory(dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})).values())
-        over.append(peak_bytes_per_point(n, "rk4") * n**3 - inv)
+        over.append(peak_rss_bytes(n, "rk4") - inv)
     cal["memory_overhead_bytes"] = float(np.median(over))
     _LAST_CALIBRATION.clear()
     _LAST_CALIBRATION.update(cal)
@@ -280,7 +287,7 @@ def bench_estimate(quick=False):
     for n in (64, 96):
         measured = est.measure_fluid_points((n,))[0]["step_seconds"]
         predicted, _ = est.step_time(cal, n, 1, "rk4")
-        mem_measured = peak_bytes_per_point(n, "rk4") * n**3
+        mem_measured = peak_rss_bytes(n, "rk4")
         c = dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})
         mem_predicted = sum(predicted_inventory(c).values()) + cal["memory_overhead_bytes"]
         out[f"step_seconds_measured_{n}"] = measured

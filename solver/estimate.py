@@ -85,14 +85,13 @@ def calibrate(sizes=(16, 24, 32, 48), save=True, extra=None):
            "fluid_points": pts, "fluid_model": fit_fluid_model(pts),
            "umax_over_urms": float(np.mean([p["umax_over_urms"] for p in pts]))}
     # resident memory beyond the array inventory (interpreter, libraries, compiled kernels)
-    from .bench import peak_bytes_per_point
+    from .bench import peak_rss_bytes
     from .config import validate
     from .inventory import predicted_inventory
 
-    n = sizes[-1]
+    n = sizes[0]
     c = validate({"grid": {"points": n}}).data
-    cal["memory_overhead_bytes"] = max(0.0, peak_bytes_per_point(n, "rk4") * n**3
-                                       - sum(predicted_inventory(c).values()))
+    cal["memory_overhead_bytes"] = max(0.0, peak_rss_bytes(n, "rk4") - sum(predicted_inventory(c).values()))
     cal.update(extra or {})
     if save:
         path = calibration_path()
