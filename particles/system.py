@@ -129,8 +129,16 @@ class ParticleSystem:
     def _interp(self, field, s, pos, out):
         # particles are kept in cell order (see `_sort_by_cell`), so no sort inside the call
         array, start = field
-        interpolation.interpolate(array, start, (self.n,) * 3, self.h, pos, s.order, out,
-                                  cell_sort=False)
+        try:
+            interpolation.interpolate(array, start, (self.n,) * 3, self.h, pos, s.order, out,
+                                      cell_sort=False)
+        except IndexError:
+            from solver.simulation import NumericalInstability
+
+            raise NumericalInstability(
+                f"particles of set {s.name!r} moved more than {migration.GHOST_MARGIN} grid cells "
+                "in one step, beyond the ghost layers of their rank; lower time.cfl or set "
+                "time.max_dt (fast settling needs dt |v| < 2 dx)") from None
 
     def _sum(self, x):
         return self.layout.sum(x) if self.distributed else x

@@ -115,12 +115,14 @@ def _fluid_point(n, repeats, with_numpy):
 def peak_rss_bytes(n, scheme):
     """Peak resident memory of a fresh process that builds an n^3 simulation and takes two
     steps (bytes)."""
+    # VmHWM, not getrusage: Linux carries ru_maxrss over exec, so a child of a large process
+    # would report its parent's peak
     code = (
-        "import resource\n"
         "from solver import bench\n"
         f"s = bench._sim({n}, {scheme!r})\n"
         "s.advance(); s.advance()\n"
-        "print('PEAK_KB', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n")
+        "hwm = [l for l in open('/proc/self/status') if l.startswith('VmHWM')][0].split()[1]\n"
+        "print('PEAK_KB', hwm)\n")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=1800)
     lines = [ln for ln in r.stdout.splitlines() if ln.startswith("PEAK_KB")]
     if r.returncode != 0 or not lines:
