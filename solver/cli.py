@@ -109,8 +109,10 @@ def cmd_run(args, comm=None):
     try:
         return sim.run()
     except NumericalInstability as exc:
-        if sim.is_root:
-            print(f"eddybox: {exc}", file=sys.stderr)
+        if sim.is_root or comm is not None:
+            print(f"eddybox: {exc}", file=sys.stderr, flush=True)
+        if comm is not None and comm.Get_size() > 1:
+            comm.Abort(EXIT_UNSTABLE)  # a particle check may fail on one rank only
         return EXIT_UNSTABLE
     except OutputWriteError as exc:
         print(f"eddybox: error: {exc}", file=sys.stderr, flush=True)
