@@ -77,30 +77,41 @@ class Scheme:
         raise NotImplementedError
 
 
-@register("rk4")
-class RK4(Scheme):
-    """Classical fourth-order Runge-Kutta (Kutta 1901) with integrating factor:
-        k1 = N(u),  k2 = N(E_h (u + h/2 k1)),  k3 = N(E_h u + h/2 k2),  k4 = N(E u + h E_h k3),
-        u <- E u + h/6 (E k1 + 2 E_h k2 + 2 E_h k3 + k4),   E = e^{-nu k^2 h}, E_h = E^{1/2}.
-    Two work arrays (accumulator, stage/slope) besides the state."""
-    order = 4
-    cfl_limit = 2.8  # |1 + z + z^2/2 + z^3/6 + z^4/24| <= 1 on the imaginary axis up to 2.83
+class _StageScheme(Scheme):
+    """Classical RK schemes with an accumulator and a stage/slope array besides the state."""
+
     extra_arrays = 2
-    fractions = (0.5, 1.0)
 
     def __init__(self, layout, nonlinear, nu):
         super().__init__(layout, nonlinear, nu)
         self.acc = self.alloc()
         self.st = self.alloc()
 
-    def step(self, uh, forcing, choose_dt, sim):
-        st, acc, f = self.st, self.acc, self.fac
-        np.copyto(st, uh)
-        umax = self.nl.evaluate(st, st, 0.0, 1.0)
+    def first_slope(self, uh, forcing, choose_dt, sim):
+        """The first slope N(u) + f into the stage array; the step size follows from that
+        stage's velocity, then the forcing and the integrating factors are fixed for the step."""
+        np.copyto(self.st, uh)
+        umax = self.nl.evaluate(self.st, self.st, 0.0, 1.0)
         dt = choose_dt(umax)
         forcing.begin_step(sim, dt)
-        f.set(dt, forcing.linear_rate)
-        forcing.add_to_rhs(st, 1.0)
+        self.fac.set(dt, forcing.linear_rate)
+        forcing.add_to_rhs(self.st, 1.0)
+        return dt
+
+
+@register("rk4")
+class RK4(_StageScheme):
+    """Classical fourth-order Runge-Kutta (Kutta 1901) with integrating factor:
+        k1 = N(u),  k2 = N(E_h (u + h/2 k1)),  k3 = N(E_h u + h/2 k2),  k4 = N(E u + h E_h k3),
+        u <- E u + h/6 (E k1 + 2 E_h k2 + 2 E_h k3 + k4),   E = e^{-nu k^2 h}, E_h = E^{1/2}.
+    Two work arrays (accumulator, stage/slope) besides the state."""
+    order = 4
+    cfl_limit = 2.8  # |1 + z + z^2/2 + z^3/6 + z^4/24| <= 1 on the imaginary axis up to 2.83
+    fractions = (0.5, 1.0)
+
+    def step(self, uh, forcing, choose_dt, sim):
+        dt = self.first_slope(uh, forcing, choose_dt, sim)
+        st, acc, f = self.st, self.acc, self.fac
         E, H, one = f[1.0], f[0.5], f[0]
         ops.if_combine(acc, st, uh, *E, 0.0, dt / 6, *H, *H, dt / 2)
         self.nl.evaluate(st, st, 0.0, 1.0)
@@ -116,27 +127,16 @@ class RK4(Scheme):
 
 
 @register("rk2")
-class RK2(Scheme):
+class RK2(_StageScheme):
     """Heun's second-order Runge-Kutta with integrating factor:
         k1 = N(u),  k2 = N(E (u + h k1)),  u <- E u + h/2 (E k1 + k2)."""
     order = 2
     cfl_limit = 1.0  # Heun is weakly unstable on the whole imaginary axis; viscosity damps it
-    extra_arrays = 2
     fractions = (1.0,)
 
-    def __init__(self, layout, nonlinear, nu):
-        super().__init__(layout, nonlinear, nu)
-        self.acc = self.alloc()
-        self.st = self.alloc()
-
     def step(self, uh, forcing, choose_dt, sim):
+        dt = self.first_slope(uh, forcing, choose_dt, sim)
         st, acc, f = self.st, self.acc, self.fac
-        np.copyto(st, uh)
-        umax = self.nl.evaluate(st, st, 0.0, 1.0)
-        dt = choose_dt(umax)
-        forcing.begin_step(sim, dt)
-        f.set(dt, forcing.linear_rate)
-        forcing.add_to_rhs(st, 1.0)
         E = f[1.0]
         ops.if_combine(acc, st, uh, *E, 0.0, dt / 2, *E, *E, dt)
         self.nl.evaluate(st, st, 0.0, 1.0)

@@ -5,14 +5,12 @@ transforms, reductions and gathers run under `mpiexec -n 2` and `-n 4` (oversubs
 small machines) through tests/mpi_scripts/transform_check.py, which compares every layout with
 numpy.fft on the global array and reports the measured errors as JSON.
 """
-import json
 import math
 import os
-import signal
-import subprocess
-import sys
 
 import pytest
+
+from tests.mpi_helpers import cached_results
 
 from solver.config import ConfigError
 from solver.inventory import local_shapes
@@ -20,8 +18,6 @@ from solver.mpi_layout import (Decomposition, auto_pencil_grid, resolve_grid, sp
                                transpose_buffer_points, transpose_bytes_sent)
 
 SCRIPT = os.path.join(os.path.dirname(__file__), "mpi_scripts", "transform_check.py")
-MPIEXEC = os.path.join(os.path.dirname(sys.executable), "mpiexec")
-TIMEOUT = 120  # seconds per mpiexec launch; a hang fails the test instead of the suite
 
 CASES = {
     # uneven: 1x2 at N=16 splits 9 kz planes 5 + 4
@@ -113,35 +109,9 @@ def test_buffers_and_bytes_at_64_cubed_on_two_ranks():
 # ---------------------------------------------------------------------------------------------
 # under MPI
 # ---------------------------------------------------------------------------------------------
-def _run_worker(ranks):
-    pytest.importorskip("mpi4py")
-    if not os.path.exists(MPIEXEC):
-        pytest.skip(f"no mpiexec beside {sys.executable}")
-    env = dict(os.environ, EDDYBOX_THREADS="1", EDDYBOX_FFTW_EFFORT="FFTW_ESTIMATE")
-    proc = subprocess.Popen([MPIEXEC, "-n", str(ranks), sys.executable, SCRIPT] + CASES[ranks],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
-                            start_new_session=True)
-    try:
-        out, err = proc.communicate(timeout=TIMEOUT)
-    except subprocess.TimeoutExpired:
-        os.killpg(proc.pid, signal.SIGKILL)  # the group holds only this mpiexec and its ranks
-        proc.communicate()
-        pytest.fail(f"mpiexec -n {ranks} did not finish within {TIMEOUT} s")
-    lines = [ln for ln in out.splitlines() if ln.startswith("RESULT ")]
-    assert proc.returncode == 0 and lines, f"worker failed ({proc.returncode}):\n{out}\n{err}"
-    return json.loads(lines[-1][len("RESULT "):])
-
-
 @pytest.fixture(scope="module")
 def results():
-    cache = {}
-
-    def get(ranks):
-        if ranks not in cache:
-            cache[ranks] = _run_worker(ranks)
-        return cache[ranks]
-
-    return get
+    return cached_results(SCRIPT, CASES)
 
 
 ALL = [(p, c) for p in CASES for c in CASES[p]]

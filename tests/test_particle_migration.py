@@ -8,14 +8,12 @@ serial reference on the global data: numpy indexing of the global field, the ser
 interpolation kernel on the whole field, brute-force numpy ownership and periodic distances,
 and the serial pair_statistics kernel on all particles.
 """
-import json
 import os
-import signal
-import subprocess
-import sys
 
 import numpy as np
 import pytest
+
+from tests.mpi_helpers import cached_results
 
 from particles import migration as mig
 from particles.interpolation import cell_index, interpolate
@@ -24,8 +22,6 @@ from solver.layout import SerialLayout
 from solver.mpi_layout import split_range
 
 SCRIPT = os.path.join(os.path.dirname(__file__), "mpi_scripts", "particle_check.py")
-MPIEXEC = os.path.join(os.path.dirname(sys.executable), "mpiexec")
-TIMEOUT = 120  # seconds per mpiexec launch; a hang fails the test instead of the suite
 L = 2.0 * np.pi
 
 CASES = {
@@ -175,35 +171,9 @@ def test_serial_distributed_pairs_equal_the_kernel(serial, cross):
 # ---------------------------------------------------------------------------------------------
 # under MPI
 # ---------------------------------------------------------------------------------------------
-def _run_worker(ranks):
-    pytest.importorskip("mpi4py")
-    if not os.path.exists(MPIEXEC):
-        pytest.skip(f"no mpiexec beside {sys.executable}")
-    env = dict(os.environ, EDDYBOX_THREADS="1", EDDYBOX_FFTW_EFFORT="FFTW_ESTIMATE")
-    proc = subprocess.Popen([MPIEXEC, "-n", str(ranks), sys.executable, SCRIPT] + CASES[ranks],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
-                            start_new_session=True)
-    try:
-        out, err = proc.communicate(timeout=TIMEOUT)
-    except subprocess.TimeoutExpired:
-        os.killpg(proc.pid, signal.SIGKILL)  # the group holds only this mpiexec and its ranks
-        proc.communicate()
-        pytest.fail(f"mpiexec -n {ranks} did not finish within {TIMEOUT} s")
-    lines = [ln for ln in out.splitlines() if ln.startswith("RESULT ")]
-    assert proc.returncode == 0 and lines, f"worker failed ({proc.returncode}):\n{out}\n{err}"
-    return json.loads(lines[-1][len("RESULT "):])
-
-
 @pytest.fixture(scope="module")
 def results():
-    cache = {}
-
-    def get(ranks):
-        if ranks not in cache:
-            cache[ranks] = _run_worker(ranks)
-        return cache[ranks]
-
-    return get
+    return cached_results(SCRIPT, CASES)
 
 
 @pytest.mark.parametrize("ranks, case", ALL)
