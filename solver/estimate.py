@@ -235,5 +235,6 @@ def print_estimate(args):
     print(f"  network: {e['bandwidth'] / 1e9:.3g} GB/s effective all-to-all bandwidth per rank, "
           f"{e['latency'] * 1e6:.3g} us latency" + ("" if args.network_bandwidth else
                                                    " (defaults for a current InfiniBand-class interconnect)"))
-    print("  u' from the forcing's target dissipation (eps = 0.5 u'^3 / L_f) or the initial energy; "
+    print("  u' from the forcing's target dissipation (eps = 0.5 u'^3 / L, L = 0.45 x forcing "
+          "wavelength) or the initial energy; "
           "no allowance for I/O, checkpoints or queue time")

@@ -22,7 +22,7 @@ def check_lines(cfg) -> list[str]:
                 f"  Kolmogorov length eta      {p['eta']:.5g}  = (nu^3/eps)^(1/4)",
                 f"  Kolmogorov time tau_eta    {p['tau_eta']:.5g}  = (nu/eps)^(1/2)",
                 f"  k_max eta                  {p['kmax_eta']:.3g}",
-                f"  u' (estimate)              {p['u_rms_estimate']:.3g}  from eps = {scales.C_EPS} u'^3/L_f",
+                f"  u' (estimate)              {p['u_rms_estimate']:.3g}  from eps = {scales.C_EPS} u'^3/L, L = {scales.INTEGRAL_OVER_FORCING_WAVELENGTH} x forcing wavelength",
                 f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))"]
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
