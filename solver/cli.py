@@ -59,23 +59,27 @@ def _parser():
 
 
 def _add_sweep(sp):
-    sp.add_argument("config")
-    sp.add_argument("--vary", action="append", default=[], metavar="KEY=V1,V2,...", required=True)
-    sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
-    sp.add_argument("--jobs", type=int, default=None)
-    sp.add_argument("--out", default=None, help="parent folder of the runs")
+    sp.add_argument("config", help="YAML config file shared by every run")
+    sp.add_argument("--vary", action="append", default=[], metavar="KEY=V1,V2,...", required=True,
+                    help="values of one key (YAML, comma separated); repeat for every combination")
+    sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="override a key in every run")
+    sp.add_argument("--jobs", type=int, default=None,
+                    help="runs at once (default: as many as fit the cores)")
+    sp.add_argument("--out", default=None, help="parent folder of the runs (default: the config's output)")
 
 
 def _add_report(sp):
-    sp.add_argument("runs", nargs="+", metavar="RUN_DIR")
-    sp.add_argument("--out", required=True)
+    sp.add_argument("runs", nargs="+", metavar="RUN_DIR", help="run folders; the first is the reference")
+    sp.add_argument("--out", required=True, help="folder for index.html, the PNGs and summary.csv")
 
 
 def _add_estimate(sp):
-    sp.add_argument("config")
-    sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
-    sp.add_argument("--points", type=int, required=True)
-    sp.add_argument("--ranks", type=int, required=True)
+    sp.add_argument("config", help="YAML config of the production run")
+    sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="override a config key")
+    sp.add_argument("--points", type=int, required=True, help="grid points per direction N")
+    sp.add_argument("--ranks", type=int, required=True, help="MPI ranks P")
     sp.add_argument("--particles", type=int, default=None, help="particles in total")
     sp.add_argument("--network-bandwidth", type=float, default=None, help="bytes/s per rank")
     sp.add_argument("--network-latency", type=float, default=None, help="seconds per message")
