@@ -100,3 +100,36 @@ def test_check_prints_scales_and_warns_when_under_resolved(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "Kolmogorov length" in out and "k_max eta" in out and "memory" in out
     assert "< 1" in out  # (0.001^3/0.1)^(1/4) * 16/3 = 0.03: far from resolved
+
+
+def test_live_progress_line_on_a_terminal(tmp_path):
+    # on a terminal the run rewrites one line (carriage returns) with step, t, dt, E, eps,
+    # Re_lambda, kmax eta and ETA; checked through a pseudo-terminal
+    import os
+    import pty
+    import subprocess
+    import sys
+
+    cfg = dict(CFG, time={"end": 3.0, "cfl": 0.5})
+    p = tmp_path / "p.yaml"
+    p.write_text(yaml.safe_dump(cfg))
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([sys.executable, "-m", "solver.cli", "run", str(p), "--out", str(tmp_path / "r")],
+                            stdout=slave, stderr=slave, close_fds=True)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 4096)
+        except OSError:
+            break
+        if not data:
+            break
+        chunks.append(data)
+    proc.wait(timeout=120)
+    os.close(master)
+    text = b"".join(chunks).decode(errors="replace")
+    assert proc.returncode == 0
+    assert "\rstep" in text  # a rewritten line (the terminal turns newlines into \r\n, not \rstep)
+    for word in ("step", "dt", "Re_lambda", "kmax_eta", "ETA"):
+        assert word in text
