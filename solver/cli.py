@@ -47,6 +47,8 @@ def _parser():
 
     i = sub.add_parser("inspect", help="summarise an output file or run folder")
     i.add_argument("path")
+    i.add_argument("--repair", action="store_true",
+                   help="first make files left by a killed run readable by plain HDF5 readers")
 
     b = sub.add_parser("bench", help="measure performance ratios on this machine")
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
@@ -143,6 +145,13 @@ def cmd_demo(args, comm=None):
 def cmd_inspect(args, comm=None):
     from .inspect import inspect_path
 
+    if args.repair:
+        from .repair import repair_path
+
+        if not os.path.exists(args.path):
+            raise ConfigError(f"{args.path}: no such file or folder")
+        for f in repair_path(args.path):
+            print(f"repaired {f} (its writer had been killed; every flushed sample kept)")
     print(inspect_path(args.path))
     return EXIT_DONE
 

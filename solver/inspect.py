@@ -64,6 +64,11 @@ def _pairs_summary(f):
 
 def inspect_file(path) -> str:
     lines = [f"{path}:"]
+    from .repair import needs_repair
+
+    if needs_repair(path):
+        lines.append("  not closed by its writer (killed run): readable with h5py.File(path, 'r', "
+                     "swmr=True); 'eddybox inspect --repair' makes it readable everywhere")
     try:
         f = h5py.File(path, "r", swmr=True)
     except (OSError, RuntimeError) as exc:

@@ -235,3 +235,28 @@ def test_write_failure_stops_cleanly_previous_checkpoint_intact(tmp_path, capsys
     with h5py.File(tmp_path / "f" / "checkpoints" / files[0]) as f:
         assert f["velocity_hat"].shape == (3, 16, 16, 9)
     _all_readable(tmp_path / "f")
+
+
+def test_repair_makes_killed_files_plainly_readable(reference, tmp_path, capsys):
+    path, ref_dir = reference["resilient"]
+    out = tmp_path / "r"
+    p = _cli("run", path, "--out", out, "--quiet")
+    _wait_for_samples(out / "fluid.h5", 12)
+    time.sleep(0.3)
+    p.kill()
+    p.communicate()
+    before = {n: _datasets(out / n) for n in OUTPUT_FILES if (out / n).exists()}
+    with pytest.raises(OSError):
+        h5py.File(out / "fluid.h5", "r")  # HDF5 refuses a plain open after a killed SWMR writer
+    assert main(["inspect", str(out), "--repair"]) == 0
+    assert "repaired" in capsys.readouterr().out
+    for n, data in before.items():
+        with h5py.File(out / n, "r") as f:  # plain readers work again, data unchanged
+            for k, v in data.items():
+                assert np.array_equal(f[k][...], v, equal_nan=True), (n, k)
+    xr = pytest.importorskip("xarray")
+    pytest.importorskip("h5netcdf")
+    with xr.open_dataset(out / "fluid.h5", engine="h5netcdf", group="series", phony_dims="access") as ds:
+        assert ds["energy"].dims == ("time",)
+    # and the run still resumes from its checkpoint
+    assert main(["run", str(path), "--out", str(out), "--quiet", "--restart", "latest"]) == 0
