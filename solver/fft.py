@@ -73,15 +73,24 @@ def _load_wisdom() -> None:
         pass  # wisdom is only a speed-up; a missing or stale file is harmless
 
 
+_wisdom_saved = None
+
+
 def save_wisdom() -> None:
+    """Write the wisdom file when planning has added to it (each plan calls this)."""
+    global _wisdom_saved
     if not HAVE_PYFFTW:
+        return
+    blob = b"\0\0EDDYBOX\0\0".join(pyfftw.export_wisdom())
+    if blob == _wisdom_saved:
         return
     try:
         path = cache_dir()
         path.mkdir(parents=True, exist_ok=True)
         tmp = path / (_WISDOM_FILE + f".{os.getpid()}.tmp")
-        tmp.write_bytes(b"\0\0EDDYBOX\0\0".join(pyfftw.export_wisdom()))
+        tmp.write_bytes(blob)
         os.replace(tmp, path / _WISDOM_FILE)
+        _wisdom_saved = blob
     except OSError:
         pass
 

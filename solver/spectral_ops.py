@@ -21,6 +21,10 @@ from numba import njit, prange
 
 @njit(cache=True, inline="always")
 def _keep(ix, iy, iz, n, mode, kc2):
+    """Whether mode (ix, iy, iz) survives dealiasing; Nyquist modes never do."""
+    half = n // 2
+    if ix == -half or iy == -half or iz == half:
+        return False
     if mode == 0:
         return 3 * abs(ix) < n and 3 * abs(iy) < n and 3 * abs(iz) < n
     return ix * ix + iy * iy + iz * iz <= kc2
@@ -33,8 +37,7 @@ def apply_mask(a, ikx, iky, ikz, n, mode, kc2):
     for i in prange(a.shape[1]):
         for j in range(a.shape[2]):
             for l in range(a.shape[3]):
-                if not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2) or ikx[i] == -(n // 2) \
-                        or iky[j] == -(n // 2) or ikz[l] == n // 2:
+                if not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2):
                     for c in range(nc):
                         a[c, i, j, l] = 0.0
 
@@ -91,12 +94,10 @@ def cross_in_place(u, w, rowmax):
 @njit(parallel=True, cache=True)
 def accumulate_masked(dst, src, a, b, ikx, iky, ikz, n, mode, kc2, sx, sy, sz):
     """dst = a dst + b conj(s) src inside the dealiasing region, 0 outside (and at Nyquist)."""
-    half = n // 2
     for i in prange(dst.shape[0]):
         for j in range(dst.shape[1]):
             for l in range(dst.shape[2]):
-                if _keep(ikx[i], iky[j], ikz[l], n, mode, kc2) and ikx[i] != -half \
-                        and iky[j] != -half and ikz[l] != half:
+                if _keep(ikx[i], iky[j], ikz[l], n, mode, kc2):
                     s = sx[i] * sy[j] * sz[l]
                     dst[i, j, l] = a * dst[i, j, l] + b * src[i, j, l] * s.conjugate()
                 else:
@@ -107,13 +108,11 @@ def accumulate_masked(dst, src, a, b, ikx, iky, ikz, n, mode, kc2, sx, sy, sz):
 def scale_mask_project(uh, kx, ky, kz, ikx, iky, ikz, n, mode, kc2, b):
     """uh <- b P(k) uh inside the dealiasing region, 0 outside: one fused pass that finishes a
     nonlinear term whose forward transforms were written straight into uh."""
-    half = n // 2
     for i in prange(uh.shape[1]):
         for j in range(uh.shape[2]):
             for l in range(uh.shape[3]):
                 k2 = kx[i] * kx[i] + ky[j] * ky[j] + kz[l] * kz[l]
-                if k2 == 0.0 or not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2) or ikx[i] == -half \
-                        or iky[j] == -half or ikz[l] == half:
+                if k2 == 0.0 or not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2):
                     uh[0, i, j, l] = 0.0
                     uh[1, i, j, l] = 0.0
                     uh[2, i, j, l] = 0.0
