@@ -10,16 +10,28 @@ from __future__ import annotations
 import numpy as np
 
 
+def band_modes(band: float):
+    """Integer wavenumbers (ix, iy, iz) with 0 < |k| <= band and iz >= 0 (on the iz = 0 plane
+    both k and -k)."""
+    r = int(np.floor(band))
+    ints = np.arange(-r, r + 1)
+    ix, iy, iz = np.meshgrid(ints, ints, np.arange(0, r + 1), indexing="ij")
+    ix, iy, iz = ix.ravel(), iy.ravel(), iz.ravel()
+    k2 = ix**2 + iy**2 + iz**2
+    keep = (k2 > 0) & (k2 <= band * band + 1e-12)
+    return ix[keep], iy[keep], iz[keep]
+
+
+def full_mode_count(band: float) -> int:
+    """Number of forced wavenumbers in the full (both-signs) space, N_F."""
+    iz = band_modes(band)[2]
+    return 2 * int(np.sum(iz > 0)) + int(np.sum(iz == 0))
+
+
 class ForcedBand:
     def __init__(self, layout, band: float):
         n = layout.n
-        r = int(np.floor(band))
-        ints = np.arange(-r, r + 1)
-        ix, iy, iz = np.meshgrid(ints, ints, np.arange(0, r + 1), indexing="ij")
-        ix, iy, iz = ix.ravel(), iy.ravel(), iz.ravel()
-        k2 = ix**2 + iy**2 + iz**2
-        keep = (k2 > 0) & (k2 <= band * band + 1e-12)
-        ix, iy, iz = ix[keep], iy[keep], iz[keep]
+        ix, iy, iz = band_modes(band)
         independent = (iz > 0) | ((iz == 0) & ((iy > 0) | ((iy == 0) & (ix > 0))))
         self.ind = np.stack([ix[independent], iy[independent], iz[independent]], axis=1)
         # stored list = independent modes, then the mirrors -k of the kz = 0 ones
@@ -29,7 +41,7 @@ class ForcedBand:
         self.source = np.concatenate([np.arange(len(self.ind)), np.nonzero(plane0)[0]])
         self.conj = np.concatenate([np.zeros(len(self.ind), bool), np.ones(plane0.sum(), bool)])
         #: number of forced modes in the full (both-signs) wavenumber space
-        self.n_full = 2 * int(np.sum(iz > 0)) + int(np.sum(iz == 0))
+        self.n_full = full_mode_count(band)
         self.n_independent = len(self.ind)
         k0 = layout.k0
         self.k_ind = self.ind.astype(float) * k0

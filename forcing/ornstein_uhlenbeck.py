@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from solver.checkpoint import restore_rng_state, rng_state_array
+
 from .band import ForcedBand
 from .base import Forcing, register
 
@@ -93,13 +95,11 @@ class OrnsteinUhlenbeckForcing(Forcing):
     def state(self):
         st = super().state()
         st["b"] = self.b.copy()
-        st["rng"] = np.frombuffer(repr(self.rng.bit_generator.state).encode(), np.uint8).copy()
+        st["rng"] = rng_state_array(self.rng)
         return st
 
     def load_state(self, st):
         super().load_state(st)
-        import ast
-
         self.b[...] = st["b"]
-        self.rng.bit_generator.state = ast.literal_eval(bytes(st["rng"]).decode())
+        restore_rng_state(self.rng, st["rng"])
         self._refresh()

@@ -22,6 +22,18 @@ class CheckpointError(Exception):
     """A checkpoint that cannot be used (message names the file and why)."""
 
 
+def rng_state_array(rng: np.random.Generator) -> np.ndarray:
+    """A numpy Generator's bit-generator state as bytes (uint8), storable in a checkpoint."""
+    return np.frombuffer(repr(rng.bit_generator.state).encode(), np.uint8).copy()
+
+
+def restore_rng_state(rng: np.random.Generator, data) -> None:
+    """Inverse of `rng_state_array` (the state is a dict literal; literal_eval, no code runs)."""
+    import ast
+
+    rng.bit_generator.state = ast.literal_eval(bytes(np.asarray(data, np.uint8)).decode())
+
+
 def checkpoint_name(step: int) -> str:
     return f"checkpoint_{step:010d}.h5"
 

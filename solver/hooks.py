@@ -12,6 +12,15 @@ from . import fluid_stats
 from .output import Column, Fixed, SampleFile, file_attrs, write_xdmf
 
 
+def state_key(path: str) -> str:
+    """An HDF5 dataset path as one checkpoint key ('/' would nest groups)."""
+    return path.replace("/", "|")
+
+
+def state_path(key: str) -> str:
+    return key.replace("|", "/")
+
+
 class Schedule:
     """Due at t = 0, every, 2 every, ... (the first step at or after each); `every` = 0 means
     every step, None never."""
@@ -131,13 +140,13 @@ class FluidHook(Hook):
         st = super().state()
         st["spectra"] = self.spectra.state()
         if self.file is not None:
-            st["counts"] = {p.replace("/", "|"): np.int64(n) for p, n in self.file.counts.items()}
+            st["counts"] = {state_key(p): np.int64(n) for p, n in self.file.counts.items()}
         return st
 
     def load_state(self, st):
         super().load_state(st)
         self.spectra.load_state(st["spectra"])
-        self._counts = {k.replace("|", "/"): int(v) for k, v in st.get("counts", {}).items()}
+        self._counts = {state_path(k): int(v) for k, v in st.get("counts", {}).items()}
 
     def close(self):
         if self.file:

@@ -36,29 +36,28 @@ def _generic(f, lines):
     f.visititems(visit)
 
 
-def _pairs_summary(f):
+def _pairs_summary(path):
     """Per group: samples, and per separation bin the time-averaged g(r), <w_r^2>, <|w_r|>
-    and the collision kernel with standard errors from the spread over samples."""
+    and the collision kernel with standard errors from the spread over samples
+    (particles.pairs_reader)."""
+    from particles.pairs_reader import list_pair_groups, read_pair_group, time_average
+
     lines = []
-    for name, g in f["pairs"].items():
-        n = g["time"].shape[0]
-        units = g["r_edges"].attrs.get("units", "")
-        lines.append(f"  pairs {name}: {n} samples" + (f", t = {g['time'][0]:.4g} .. {g['time'][-1]:.4g}" if n else ""))
+    for name in list_pair_groups(path):
+        series = read_pair_group(path, name)
+        n = series.n_samples
+        lines.append(f"  pairs {name}: {n} samples"
+                     + (f", t = {series.time[0]:.4g} .. {series.time[-1]:.4g}" if n else ""))
         if not n:
             continue
-        edges = g["r_edges"][...]
+        avg = time_average(series)
+        edges = series.r_edges
         lines.append(f"    {'r_lo':>9s} {'r_hi':>9s} {'pairs':>10s} {'g(r)':>16s} {'<w_r^2>':>11s} "
-                     f"{'<|w_r|>':>11s} {'kernel':>11s}   (r in {units})")
-        counts = g["counts"][...].sum(axis=0)
-        err = lambda a: np.nanstd(a, axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(a.shape[1], np.nan)
-        rdf = g["rdf"][...]
-        with np.errstate(invalid="ignore"):
-            m = {k: np.nanmean(g[k][...], axis=0) for k in ("rdf", "wr_sq", "wr_abs", "kernel")}
-        e = err(rdf)
+                     f"{'<|w_r|>':>11s} {'kernel':>11s}   (r in {series.units.get('r_edges', '')})")
         for i in range(len(edges) - 1):
-            lines.append(f"    {edges[i]:9.4g} {edges[i + 1]:9.4g} {counts[i]:10d} "
-                         f"{m['rdf'][i]:8.4g}±{e[i]:<7.2g} {m['wr_sq'][i]:11.4g} {m['wr_abs'][i]:11.4g} "
-                         f"{m['kernel'][i]:11.4g}")
+            lines.append(f"    {edges[i]:9.4g} {edges[i + 1]:9.4g} {avg.counts[i]:10d} "
+                         f"{avg.rdf[i]:8.4g}±{avg.rdf_err[i]:<7.2g} {avg.wr_sq[i]:11.4g} "
+                         f"{avg.wr_abs[i]:11.4g} {avg.kernel[i]:11.4g}")
     return lines
 
 
@@ -80,7 +79,7 @@ def inspect_file(path) -> str:
         if "series" in f:
             _series(f, lines)
         if "pairs" in f:
-            lines += _pairs_summary(f)
+            lines += _pairs_summary(path)
         elif "velocity_hat" in f:
             a = f.attrs
             if "step" in a:

@@ -26,15 +26,9 @@ def forcing_target(config):
         if f.get("dissipation") is not None:
             return f["dissipation"]
         if f.get("variance") is not None:
-            from forcing.band import ForcedBand
+            from forcing.band import full_mode_count
 
-            class _L:  # just enough of a layout to count modes
-                n = config["grid"]["points"]
-                k0 = 2 * math.pi / config["grid"]["length"]
-                spec_start = (0, 0, 0)
-                spec_shape = (n, n, n // 2 + 1)
-
-            return 4 * ForcedBand(_L, f["band"]).n_full * f["variance"] * f["timescale"]
+            return 4 * full_mode_count(f["band"]) * f["variance"] * f["timescale"]
         return 0.1
     if f["kind"] in ("linear",) and f.get("dissipation") is not None:
         return f["dissipation"]
