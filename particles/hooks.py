@@ -8,7 +8,8 @@ import os
 
 import numpy as np
 
-from solver.hooks import Hook, Schedule
+from solver.checkpoint import restore_rng_state, rng_state_array
+from solver.hooks import Hook, Schedule, state_key, state_path
 from solver.output import Column, Fixed, SampleFile, file_attrs
 
 from . import migration
@@ -24,14 +25,6 @@ SET_SERIES = {
 }
 
 
-def _esc(path):
-    return path.replace("/", "|")
-
-
-def _unesc(key):
-    return key.replace("|", "/")
-
-
 class _LazyFileHook(Hook):
     """A hook whose file appears at the particle release; restores per-column counts."""
 
@@ -40,9 +33,11 @@ class _LazyFileHook(Hook):
         self.path = path
         self.file = None
         self._resume = None
+        self._resume_counts = None
 
     def open(self, sim, resume_samples=None):
-        self._resume = resume_samples
+        # per-column counts from the checkpoint when there are any, else one count for all
+        self._resume = None if resume_samples is None else (self._resume_counts or resume_samples)
         self._reopen_now(sim)
 
     def _reopen_now(self, sim):
@@ -82,12 +77,12 @@ class _LazyFileHook(Hook):
         st = super().state()
         counts = self._counts()
         if counts:
-            st["counts"] = {_esc(p): np.int64(n) for p, n in counts.items()}
+            st["counts"] = {state_key(p): np.int64(n) for p, n in counts.items()}
         return st
 
     def load_state(self, st):
         super().load_state(st)
-        self._resume_counts = {_unesc(k): int(v) for k, v in st.get("counts", {}).items()}
+        self._resume_counts = {state_path(k): int(v) for k, v in st.get("counts", {}).items()}
 
     def close(self):
         if self.file:
@@ -107,11 +102,6 @@ class ParticleHook(_LazyFileHook):
         super().__init__(series_every, path)
         self.snap = Schedule(cfg_stats["every"])
         self.max_count = cfg_stats["max_count"]
-        self._resume_counts = None
-
-    def open(self, sim, resume_samples=None):
-        self._resume = None if resume_samples is None else (self._resume_counts or resume_samples)
-        self._reopen_now(sim)
 
     def due(self, t, step):
         return self.schedule.due(t, step) or self.snap.due(t, step)
@@ -226,11 +216,6 @@ class PairHook(_LazyFileHook):
         self.rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([cfg["seed"], 0x5A11])))
         self.running = {}
         self.n_running = 0
-        self._resume_counts = None
-
-    def open(self, sim, resume_samples=None):
-        self._resume = None if resume_samples is None else (self._resume_counts or resume_samples)
-        self._reopen_now(sim)
 
     def _ready(self):
         return self.wr_edges is not None
@@ -263,6 +248,7 @@ class PairHook(_LazyFileHook):
             for s in ps.sets:
                 m = min(self.c["subsample_count"], s.count)
                 subsets[s.name] = s.first_id + np.sort(self.rng.choice(s.count, size=m, replace=False))
+        centres = pairs_kernel.bin_centres(r_edges)
         rec = {}
         for a, b in self.groups:
             sa, sb = sets[a], sets[b]
@@ -277,16 +263,12 @@ class PairHook(_LazyFileHook):
                 r_sub=r_sub, subsample_ids=sub)
             values = pairs_kernel.pairs_record(smp)
             g = f"/pairs/{a}__{b}"
-            rec[f"{g}/time"] = sim.t
-            for k in PAIR_COLUMNS:
-                if k == "eta":
-                    rec[f"{g}/eta"] = eta
-                elif k == "r_centres":
-                    rec[f"{g}/r_centres"] = pairs_kernel.bin_centres(r_edges)
-                else:
-                    rec[f"{g}/{k}"] = values[k]
-            rec[f"{g}/subsampled"] = values["subsampled"].astype(np.int8)
+            values.update(eta=eta, r_centres=centres, time=sim.t,
+                          subsampled=values["subsampled"].astype(np.int8))
+            for k in ("time", "subsampled", *PAIR_COLUMNS):
+                rec[f"{g}/{k}"] = values[k]
             self._accumulate(g, values)
+        self.n_running += 1
         if self.file is not None:
             self.file.append(rec)
             for g, acc in self.running.items():
@@ -297,8 +279,6 @@ class PairHook(_LazyFileHook):
 
     def _accumulate(self, g, values):
         acc = self.running.setdefault(g, {})
-        if g == next(iter(self.running)):
-            self.n_running += 1
         for k in RUNNING:
             v = np.nan_to_num(np.asarray(values[k], float)) if k not in ("counts", "wr_hist") \
                 else np.asarray(values[k], np.int64)
@@ -345,18 +325,16 @@ class PairHook(_LazyFileHook):
 
     def state(self):
         st = super().state()
-        st["rng"] = np.frombuffer(repr(self.rng.bit_generator.state).encode(), np.uint8).copy()
+        st["rng"] = rng_state_array(self.rng)
         if self.wr_edges is not None:
             st["wr_edges"] = self.wr_edges
         st["n_running"] = np.int64(self.n_running)
-        st["running"] = {_esc(g): {k: np.asarray(v) for k, v in acc.items()} for g, acc in self.running.items()}
+        st["running"] = {state_key(g): {k: np.asarray(v) for k, v in acc.items()} for g, acc in self.running.items()}
         return st
 
     def load_state(self, st):
-        import ast
-
         super().load_state(st)
-        self.rng.bit_generator.state = ast.literal_eval(bytes(st["rng"]).decode())
+        restore_rng_state(self.rng, st["rng"])
         self.wr_edges = st.get("wr_edges")
         self.n_running = int(st["n_running"])
-        self.running = {_unesc(g): dict(acc) for g, acc in st.get("running", {}).items()}
+        self.running = {state_path(g): dict(acc) for g, acc in st.get("running", {}).items()}

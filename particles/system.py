@@ -82,11 +82,11 @@ class ParticleSet:
 
 
 class ParticleSystem:
-    def __init__(self, cfg: dict, layout, sim):
+    def __init__(self, cfg: dict, layout):
         p = cfg["particles"]
         self.layout = layout
         self.release = p["release"]
-        self.seed = cfg["seed"]
+        self.rng_seed = cfg["seed"]
         self.length = cfg["grid"]["length"]
         self.n = cfg["grid"]["points"]
         self.h = self.length / self.n
@@ -106,8 +106,6 @@ class ParticleSystem:
         self.released = False
         self.release_scales = {}
         self._frozen_field = None
-        if self.release <= 0.0:
-            self._seed(sim)
 
     # -- the velocity field in physical space, as the interpolation kernels want it -----------
     def _field(self, sim):
@@ -154,7 +152,9 @@ class ParticleSystem:
             for name in ("ids", "x", "v", "u_seen"):
                 setattr(s, name, np.ascontiguousarray(getattr(s, name)[perm]))
 
-    def _seed(self, sim):
+    def seed(self, sim):
+        """Release every set: uniform positions, the fluid velocity as initial velocity, tau_p
+        from the Stokes number and the tau_eta measured now (collective)."""
         sp = sim.spectral_stats()
         eps = sp["dissipation"]
         tau_eta = float(np.sqrt(sim.nu / eps)) if eps > 0 else float("inf")
@@ -164,7 +164,7 @@ class ParticleSystem:
         field = self._field(sim)
         first_id = 0
         for s in self.sets:
-            rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0x9A27, s.index])))
+            rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.rng_seed, 0x9A27, s.index])))
             # every rank draws the whole set and keeps its own: the same particles on any layout
             x = rng.random((s.count, 3)) * self.length
             x[x >= self.length] = 0.0
@@ -182,8 +182,7 @@ class ParticleSystem:
             s.released = True
         self.released = True
         sim.log.write(f"particles released at t={sim.t:.6g}: tau_eta={tau_eta:.4g}; "
-                      + ", ".join(f"{s.name} St={s.stokes:.3g} tau_p={s.tau_p:.3g}" for s in self.sets)) \
-            if hasattr(sim, "log") else None
+                      + ", ".join(f"{s.name} St={s.stokes:.3g} tau_p={s.tau_p:.3g}" for s in self.sets))
 
     # -- one step -----------------------------------------------------------------------------
     def advance(self, sim, dt):
@@ -192,7 +191,7 @@ class ParticleSystem:
             if sim.t + dt >= self.release - 1e-12:
                 t_save = sim.t
                 sim.t = sim.t + dt
-                self._seed(sim)
+                self.seed(sim)
                 sim.t = t_save
             return
         field = self._field(sim)

@@ -11,8 +11,7 @@ import os
 import sys
 
 from .config import ConfigError
-
-EXIT_DONE, EXIT_ERROR, EXIT_USAGE, EXIT_UNSTABLE, EXIT_STOPPED = 0, 1, 2, 3, 75
+from .simulation import EXIT_DONE, EXIT_ERROR, EXIT_STOPPED, EXIT_UNSTABLE, EXIT_USAGE
 
 
 class _Parser(argparse.ArgumentParser):

@@ -199,7 +199,7 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
         pairs_per_step = npairs / max(1.0, pr["every"] / dt)
     order = cfg["particles"]["interpolation"]
     t, parts = step_time(cal, n, ranks, cfg["time"]["scheme"], "auto",
-                         -(-total_particles // 1) if sets else 0, order, bw, lat, pairs_per_step)
+                         total_particles if sets else 0, order, bw, lat, pairs_per_step)
     threads = cal.get("threads", 1)
     return {"points": n, "ranks": ranks, "layout": layout, "particles": total_particles if sets else 0,
             "memory_per_rank": sum(inv.values()) + cal.get("memory_overhead_bytes", 0.0),

@@ -31,8 +31,9 @@ from .initial import InitialFieldError, build_initial
 from .layout import make_layout
 from .navier_stokes import NonlinearTerm
 from .progress import Progress, RunLog
-from .timestepping import SCHEMES
+from .timestepping import SCHEMES, spectral_cfl_bound
 
+#: exit codes of the CLI contract (design.md), shared by `eddybox run`, `sweep` and the loop
 EXIT_DONE, EXIT_ERROR, EXIT_USAGE, EXIT_UNSTABLE, EXIT_STOPPED = 0, 1, 2, 3, 75
 
 
@@ -48,14 +49,7 @@ class OutputWriteError(Exception):
     """An output or checkpoint file could not be written; the last checkpoint is intact."""
 
 
-class StoppedEarly(Exception):
-    """A signal or the wall-time budget stopped the run after a checkpoint."""
-
-
-RUN_FILES = ("config.yaml", "log.txt", "fluid.h5", "particles.h5", "pairs.h5")
-
-
-def prepare_output(out, overwrite: bool, restart: bool, is_root=True):
+def prepare_output(out, overwrite: bool, restart: bool):
     """Refuse to mix runs: an existing non-empty folder needs --overwrite or --restart."""
     out = str(out)
     if os.path.exists(out) and not os.path.isdir(out):
@@ -68,10 +62,9 @@ def prepare_output(out, overwrite: bool, restart: bool, is_root=True):
     if exists and not overwrite:
         raise ConfigError(f"{out}: output folder exists and is not empty; use --overwrite to "
                           "replace it or --restart latest to continue it")
-    if is_root:
-        if exists:
-            shutil.rmtree(out)
-        os.makedirs(out, exist_ok=True)
+    if exists:
+        shutil.rmtree(out)
+    os.makedirs(out, exist_ok=True)
 
 
 class Simulation:
@@ -112,12 +105,21 @@ class Simulation:
         error = None
         if self.is_root:
             try:
-                prepare_output(self.out, overwrite, restart is not None, True)
+                prepare_output(self.out, overwrite, restart is not None)
             except ConfigError as exc:
                 error = str(exc)
         error = self.layout.bcast(error)
         if error:
             raise ConfigError(error)
+        self.log = RunLog(os.path.join(self.out, "log.txt") if self.is_root else None, quiet or not self.is_root,
+                          stream=stream)
+        self.log.write(f"eddybox run: {config.summary()}")
+        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]])
+        if c["time"]["cfl"] > bound:
+            self.log.write(f"warning: time.cfl = {c['time']['cfl']} is above {bound:.2f}, the "
+                           "stability bound for pseudo-spectral advection; the run may become unstable")
+        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
+                       f"{c['fluid']['dealias']}; output {self.out}")
 
         st = c["stats"]
         self.hooks = [FluidHook(st["fluid"]["every"], st["spectra"]["every"], os.path.join(self.out, "fluid.h5")),
@@ -127,33 +129,24 @@ class Simulation:
             from particles.system import ParticleSystem
             from particles.hooks import ParticleHook, PairHook
 
-            self.particles = ParticleSystem(c, self.layout, self)
+            self.particles = ParticleSystem(c, self.layout)
             self.hooks.append(ParticleHook(st["particles"], os.path.join(self.out, "particles.h5"), c))
             if st["pairs"]["every"] is not None:
                 self.hooks.append(PairHook(st["pairs"], os.path.join(self.out, "pairs.h5"), c))
         every = c["checkpoint"]["every"]
         self.checkpoint_schedule = Schedule(every, start=every or 0.0)
-        self.log = RunLog(os.path.join(self.out, "log.txt") if self.is_root else None, quiet or not self.is_root,
-                          stream=stream)
 
         if restart_path is not None:
             self._load(ck, restart_path)
         else:
+            if self.particles is not None and self.particles.release <= 0.0:
+                self.particles.seed(self)
             for h in self.hooks:
                 h.open(self, None)
             derived = scales.derived_block(config, self)  # collective: every rank takes part
             if self.is_root:
                 with open(os.path.join(self.out, "config.yaml"), "w") as fh:
                     fh.write(config.to_yaml(derived))
-        self.log.write(f"eddybox run: {config.summary()}")
-        from .timestepping import spectral_cfl_bound
-
-        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]])
-        if c["time"]["cfl"] > bound:
-            self.log.write(f"warning: time.cfl = {c['time']['cfl']} is above {bound:.2f}, the "
-                           "stability bound for pseudo-spectral advection; the run may become unstable")
-        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
-                       f"{c['fluid']['dealias']}; output {self.out}")
 
     # ------------------------------------------------------------------ state and statistics
     def energy(self) -> float:
@@ -172,7 +165,6 @@ class Simulation:
         rec.update(fluid_stats.derived_scales(sp["energy"], sp["dissipation"], sp["inv_k"], self.nu,
                                               self.nl.kmax()))
         rec.update(der)
-        self.last_record = rec
         return rec
 
     def wall_time(self) -> float:

@@ -38,10 +38,10 @@ from . import config as cfgmod
 from .checkpoint import latest_checkpoint
 from .config import ConfigError, differing_keys
 from .fft import available_cores
+from .simulation import EXIT_DONE, EXIT_STOPPED
 
 STATUS_FILE = "sweep_status.json"
 CONSOLE_DIR = ".console"
-EXIT_DONE, EXIT_STOPPED = 0, 75
 _SAFE = re.compile(r"[^A-Za-z0-9._=+\-]+")
 _RUN_MARKERS = ("config.yaml", "log.txt", "fluid.h5", "checkpoints")
 
