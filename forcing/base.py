@@ -30,7 +30,7 @@ def register(name: str):
 
 class Forcing:
     kind = "base"
-    #: config keys this scheme accepts: name -> (default, description); validated by solver.config
+    #: config keys this scheme accepts: name -> (default, description); validated by eddybox.solver.run.config
     params: dict = {}
 
     def __init__(self, cfg: dict, layout, seed: int):

@@ -1,7 +1,7 @@
 """Linear forcing in physical space (Lundgren 2003; Rosales & Meneveau 2005)."""
 from __future__ import annotations
 
-from .base import Forcing, register
+from eddybox.forcing.base import Forcing, register
 
 
 @register("linear")

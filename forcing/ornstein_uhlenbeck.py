@@ -3,10 +3,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from solver.checkpoint import restore_rng_state, rng_state_array
-
-from .band import ForcedBand
-from .base import Forcing, register
+from eddybox.forcing.band import ForcedBand
+from eddybox.forcing.base import Forcing, register
+from eddybox.solver.run.checkpoint import restore_rng_state, rng_state_array
 
 
 @register("ou")

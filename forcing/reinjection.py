@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .band import ForcedBand
-from .base import Forcing, register
+from eddybox.forcing.band import ForcedBand
+from eddybox.forcing.base import Forcing, register
 
 
 @register("reinject")

@@ -8,12 +8,11 @@ import os
 
 import numpy as np
 
-from solver.checkpoint import restore_rng_state, rng_state_array
-from solver.hooks import Hook, Schedule, state_key, state_path
-from solver.output import Column, Fixed, SampleFile, file_attrs
-
-from . import migration
-from . import pairs as pairs_kernel
+from eddybox.particles import migration
+from eddybox.particles import pairs as pairs_kernel
+from eddybox.solver.run.checkpoint import restore_rng_state, rng_state_array
+from eddybox.solver.run.hooks import Hook, Schedule, state_key, state_path
+from eddybox.solver.run.output import Column, Fixed, SampleFile, file_attrs
 
 SET_SERIES = {
     "time": ("T", "sample time"),

@@ -206,7 +206,7 @@ def _as_spacing(h):
     return h
 
 
-# Auto cell-sort rule, measured with particles.bench_interp on a 2-core machine with 8 MiB of
+# Auto cell-sort rule, measured with eddybox.solver.study.bench_interp on a 2-core machine with 8 MiB of
 # L3: sorting costs ~0.15 us per particle and pays off once the field no longer fits in the
 # cache (2.5x faster at 64^3, 3.5x at 128^3), but loses ~10% for a cache-resident field.
 CELL_SORT_MIN_FIELD_BYTES = 4 * 2**20
@@ -238,7 +238,7 @@ def interpolate(field, start, n_global, h, positions, order, out, *, cell_sort=N
         bit-for-bit the same, only the memory access pattern changes. ``None`` (default)
         sorts when the field is larger than ``CELL_SORT_MIN_FIELD_BYTES`` and there are at
         least ``CELL_SORT_MIN_PARTICLES`` particles. A particle set that keeps itself in cell
-        order gets the cache benefit without the sort (see ``particles.bench_interp``).
+        order gets the cache benefit without the sort (see ``eddybox.solver.study.bench_interp``).
 
     Raises
     ------

@@ -34,8 +34,8 @@ import math
 
 import numpy as np
 
-from . import interpolation
-from . import pairs as pairs_kernel
+from eddybox.particles import interpolation
+from eddybox.particles import pairs as pairs_kernel
 
 __all__ = [
     "GHOST_MARGIN",
@@ -134,7 +134,9 @@ def _axis_counts(ranges, n: int, w: int):
 def ghost_block_bytes(n: int, proc_grid, components: int, width: int) -> np.ndarray:
     """Bytes a `GhostField` allocates on every rank of a P1 x P2 grid (ghosted block plus its
     send and receive buffers), as an array indexed [p, q]."""
-    from solver.mpi_layout import split_range  # the layout's own block rule
+    from eddybox.solver.fluid.mpi_layout import (
+        split_range,  # the layout's own block rule
+    )
 
     parts = []
     for p in proc_grid:
@@ -151,8 +153,8 @@ def ghost_field_bytes(cfg, ranks, layout) -> int:
     including its exchange buffers: what `GhostField(layout, blockmap, 3,
     ghost_width(max order))` allocates. `layout` is 'slab' or 'pencil' (the grid from
     parallel.grid when it fits, else the automatic one)."""
-    from solver.config import ConfigError
-    from solver.mpi_layout import resolve_grid
+    from eddybox.solver.errors import ConfigError
+    from eddybox.solver.fluid.mpi_layout import resolve_grid
 
     n = cfg["grid"]["points"]
     orders = [s["interpolation"] or cfg["particles"]["interpolation"] for s in cfg["particles"]["sets"]]

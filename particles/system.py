@@ -13,8 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import integrator, interpolation, migration
-from .physical import physical_numbers
+from eddybox.particles import integrator, interpolation, migration
+from eddybox.particles.physical import physical_numbers
 
 #: steps between re-sorts of the particles by grid cell
 SORT_EVERY = 16
@@ -31,7 +31,7 @@ def ghost_field_bytes(cfg, ranks, layout) -> int:
 
 
 def _ghost_bytes(cfg, ranks, layout):  # filled in by the distributed particle layer
-    from .migration import ghost_field_bytes as gfb
+    from eddybox.particles.migration import ghost_field_bytes as gfb
 
     return gfb(cfg, ranks, layout)
 
@@ -131,7 +131,7 @@ class ParticleSystem:
             interpolation.interpolate(array, start, (self.n,) * 3, self.h, pos, s.order, out,
                                       cell_sort=False)
         except IndexError:
-            from solver.simulation import NumericalInstability
+            from eddybox.solver.errors import NumericalInstability
 
             raise NumericalInstability(
                 f"particles of set {s.name!r} moved more than {migration.GHOST_MARGIN} grid cells "
@@ -143,7 +143,7 @@ class ParticleSystem:
 
     def _sort_by_cell(self):
         """Reorder every set by grid cell: neighbouring particles then share cache lines of
-        the interpolation stencils (about 3x faster at 128^3, see particles.bench_interp).
+        the interpolation stencils (about 3x faster at 128^3, see eddybox.solver.study.bench_interp).
         Ids move with their particles, so snapshots and checkpoints are unaffected."""
         for s in self.sets:
             if s.x.shape[0] < 1024:
@@ -222,7 +222,7 @@ class ParticleSystem:
     def q_field(self, sim):
         """Second invariant Q = (||Omega||^2 - ||S||^2)/2 = -(1/2) A_ij A_ji of the velocity
         gradient A_ij = du_i/dx_j on the grid (Pope 2000, ex. 6.? ; Squires & Eaton 1991)."""
-        from solver import spectral_ops as ops
+        from eddybox.solver.fluid import spectral_ops as ops
 
         lay = sim.layout
         a, b, q = sim.nl.u[0], sim.nl.u[1], sim.nl.w[0]

@@ -1,4 +1,6 @@
-"""eddybox solver: Fourier Navier-Stokes core, run loop, I/O and command line."""
+"""eddybox.solver: the fluid core (`fluid`), the run machinery (`run`), estimators of means and
+error bars (`estimators`), the study tools (`study`) and the command line (`cli`).
+See DEVELOPERS.md, "Architecture", for who may import whom."""
 __version__ = "0.1.0"
 import os as _os
 

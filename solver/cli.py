@@ -10,8 +10,14 @@ import argparse
 import os
 import sys
 
-from .config import ConfigError
-from .simulation import EXIT_DONE, EXIT_ERROR, EXIT_STOPPED, EXIT_UNSTABLE, EXIT_USAGE
+from eddybox.solver.errors import (
+    EXIT_DONE,
+    EXIT_ERROR,
+    EXIT_STOPPED,
+    EXIT_UNSTABLE,
+    EXIT_USAGE,
+    ConfigError,
+)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -105,8 +111,9 @@ def _comm():
 
 
 def cmd_run(args, comm=None):
-    from . import config as cfgmod
-    from .simulation import NumericalInstability, OutputWriteError, Simulation
+    from eddybox.solver.errors import NumericalInstability, OutputWriteError
+    from eddybox.solver.run import config as cfgmod
+    from eddybox.solver.run.simulation import Simulation
 
     cfg = cfgmod.load(args.config, args.set)
     sim = Simulation(cfg, output=args.out, overwrite=args.overwrite, restart=args.restart, comm=comm,
@@ -127,8 +134,8 @@ def cmd_run(args, comm=None):
 
 
 def cmd_check(args, comm=None):
-    from . import config as cfgmod
-    from .report_check import print_check
+    from eddybox.solver.run import config as cfgmod
+    from eddybox.solver.study.check import print_check
 
     cfg = cfgmod.load(args.config, args.set)
     print_check(cfg)
@@ -136,16 +143,16 @@ def cmd_check(args, comm=None):
 
 
 def cmd_demo(args, comm=None):
-    from .demo import run_demo
+    from eddybox.solver.study.demo import run_demo
 
     return run_demo(args.out, args.overwrite, comm=comm)
 
 
 def cmd_inspect(args, comm=None):
-    from .inspect import inspect_path
+    from eddybox.solver.study.inspect import inspect_path
 
     if args.repair:
-        from .repair import repair_path
+        from eddybox.solver.run.repair import repair_path
 
         if not os.path.exists(args.path):
             raise ConfigError(f"{args.path}: no such file or folder")
@@ -156,26 +163,26 @@ def cmd_inspect(args, comm=None):
 
 
 def cmd_bench(args, comm=None):
-    from .bench import run_bench
+    from eddybox.solver.study.bench import run_bench
 
     return run_bench(quick=args.quick, json_path=args.json)
 
 
 def cmd_sweep(args, comm=None):
-    from .sweep import run_sweep
+    from eddybox.solver.study.sweep import run_sweep
 
     return run_sweep(args)
 
 
 def cmd_report(args, comm=None):
-    from .report import write_report
+    from eddybox.solver.study.report import write_report
 
     write_report(args.runs, args.out)
     return EXIT_DONE
 
 
 def cmd_estimate(args, comm=None):
-    from .estimate import print_estimate
+    from eddybox.solver.study.estimate import print_estimate
 
     print_estimate(args)
     return EXIT_DONE
@@ -210,8 +217,7 @@ def main(argv=None) -> int:
         sys.stdout = open(os.devnull, "w")
         return EXIT_DONE
     except Exception as exc:  # noqa: BLE001 - the last line of defence: a message, not a trace
-        from .checkpoint import CheckpointError
-        from .output import OutputError
+        from eddybox.solver.errors import CheckpointError, OutputError
 
         if isinstance(exc, (CheckpointError, OutputError)):
             code = _fail(comm, EXIT_USAGE, str(exc))

@@ -7,7 +7,7 @@ os.environ.setdefault("EDDYBOX_FFTW_EFFORT", "FFTW_ESTIMATE")
 
 import pytest  # noqa: E402
 
-from solver.config import validate  # noqa: E402
+from eddybox.solver.run.config import validate  # noqa: E402
 
 
 def make_config(tmp_path, **sections):

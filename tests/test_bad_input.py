@@ -7,7 +7,7 @@ import sys
 import pytest
 import yaml
 
-from solver.cli import main
+from eddybox.solver.cli import main
 
 GOOD = {"name": "bad-input", "grid": {"points": 16}, "fluid": {"viscosity": 0.05},
         "time": {"end": 0.1}, "stats": {"fluid": {"every": None}, "spectra": {"every": None}}}
@@ -165,7 +165,7 @@ def test_bad_command_lines(tmp_path, capsys, occupied, argv, needle):
 def test_real_process_bad_config_no_traceback(tmp_path):
     path = tmp_path / "bad.yaml"
     path.write_text("grid: {points: 15}\n")
-    r = subprocess.run([sys.executable, "-m", "solver.cli", "run", str(path)], capture_output=True,
+    r = subprocess.run([sys.executable, "-m", "eddybox.solver.cli", "run", str(path)], capture_output=True,
                        text=True, cwd=tmp_path)
     assert r.returncode == 2
     assert "grid.points" in r.stderr and "Traceback" not in r.stderr

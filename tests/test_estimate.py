@@ -1,14 +1,14 @@
 """`eddybox estimate`: memory equals the solver's own array inventory; the time model fits."""
 import math
 
-import numpy as np
 import pytest
 import yaml
 
-from solver import estimate as est
-from solver.cli import main
-from solver.inventory import live_inventory, predicted_inventory
-from solver.simulation import Simulation
+from eddybox.solver.cli import main
+from eddybox.solver.run.inventory import live_inventory, predicted_inventory
+from eddybox.solver.run.simulation import Simulation
+from eddybox.solver.study import calibration
+from eddybox.solver.study import estimate as est
 
 
 @pytest.mark.parametrize("scheme,dealias,particles", [("rk4", "two-thirds", False), ("rk3", "two-thirds", True),
@@ -30,9 +30,9 @@ def test_time_model_reproduces_its_calibration_points():
     pts = []
     for n, scheme in ((16, "rk4"), (24, "rk3"), (32, "rk4"), (48, "rk2")):
         n3 = n**3
-        s = est.STAGES[scheme]
+        s = calibration.STAGES[scheme]
         pts.append({"n": n, "scheme": scheme, "step_seconds": s * (9 * a * n3 * math.log2(n3) + b * n3)})
-    fit = est.fit_fluid_model(pts)
+    fit = calibration.fit_fluid_model(pts)
     assert fit["a"] == pytest.approx(a, rel=1e-8) and fit["b"] == pytest.approx(b, rel=1e-6)
     cal = {"fluid_model": fit, "threads": 1, "umax_over_urms": 6.0}
     for p in pts:
@@ -56,10 +56,10 @@ def test_estimate_table_and_scaling(tmp_path, capsys):
     out = capsys.readouterr().out
     for word in ("memory per rank", "seconds per step", "core-hours", "assumptions", "InfiniBand"):
         assert word in out
-    from solver.config import validate
+    from eddybox.solver.run.config import validate
 
     c = validate(cfg).data
-    calib = est.load_calibration(str(cal))
+    calib = calibration.load_calibration(str(cal))
     e1 = est.estimate(c, 256, 1, cal=calib)
     e8 = est.estimate(c, 256, 8, cal=calib)
     assert e8["memory_per_rank"] < e1["memory_per_rank"] / 4  # plus transpose buffers and ghosts

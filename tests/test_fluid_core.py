@@ -2,8 +2,8 @@
 import numpy as np
 import pytest
 
-from solver.simulation import Simulation
-from solver import fluid_stats
+from eddybox.solver.fluid import fluid_stats
+from eddybox.solver.run.simulation import Simulation
 
 
 def build(cfgf, **kw):
@@ -142,7 +142,7 @@ def test_ou_process_statistics(config_factory):
     # scipy.stats at a fixed seed
     from scipy import stats
 
-    from forcing import make_forcing
+    from eddybox.forcing import make_forcing
 
     sim = build(config_factory)
     T, dt = 0.5, 0.05
@@ -175,7 +175,7 @@ def test_divergence_stays_at_roundoff_in_forced_run(config_factory):
 def test_rk4_step_matches_straightforward_numpy_step(config_factory):
     # the benchmark's numpy.fft reference step (independent implementation with numpy.fft and
     # temporaries) and the in-place kernels take the same RK4 step
-    from solver.bench import numpy_reference_step
+    from eddybox.solver.study.bench import numpy_reference_step
 
     sim = build(config_factory, grid={"points": 16},
                 fluid={"viscosity": 0.02, "initial": {"kind": "spectrum", "energy": 0.5}},
@@ -189,10 +189,10 @@ def test_rk4_step_matches_straightforward_numpy_step(config_factory):
 def test_forced_48_cube_reaches_stationary_state_with_negative_skewness(config_factory):
     # forced isotropic turbulence settles to a statistically stationary state whose
     # velocity-derivative skewness is about -0.5 (Pope 2000, sec. 6.5; common practice);
-    # stationarity judged by the MSER-5 truncation rule (solver.analysis)
+    # stationarity judged by the MSER-5 truncation rule (eddybox.solver.estimators.timeseries)
     import h5py
 
-    from solver.analysis import stationary_summary
+    from eddybox.solver.estimators.timeseries import stationary_summary
 
     sim = build(config_factory, grid={"points": 48}, seed=1,
                 fluid={"viscosity": 0.015, "initial": {"kind": "spectrum", "energy": 0.3, "peak": 2}},
@@ -231,7 +231,7 @@ def test_time_step_allocates_nothing_grid_sized(config_factory, scheme):
 
 def test_numpy_fallback_transforms_equal_pyfftw():
     # the numpy.fft fallback (used when pyFFTW is missing) gives the same unnormalised transforms
-    from solver.layout import SerialLayout
+    from eddybox.solver.fluid.serial_layout import SerialLayout
 
     a = SerialLayout(12, 2 * np.pi, threads=1, backend="numpy")
     b = SerialLayout(12, 2 * np.pi, threads=1)

@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from particles.interpolation import (
+from eddybox.particles.interpolation import (
     INTERPOLATION_ORDERS,
     cell_index,
     fourier_series_at,

@@ -1,4 +1,4 @@
-"""Distributed slab and pencil layouts (solver.mpi_layout).
+"""Distributed slab and pencil layouts (eddybox.solver.fluid.mpi_layout).
 
 The geometry (ranges, grids, buffer and message sizes) is checked here in-process; the
 transforms, reductions and gathers run under `mpiexec -n 2` and `-n 4` (oversubscribed on
@@ -10,12 +10,17 @@ import os
 
 import pytest
 
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fluid.mpi_layout import (
+    Decomposition,
+    auto_pencil_grid,
+    resolve_grid,
+    split_range,
+    transpose_buffer_points,
+    transpose_bytes_sent,
+)
+from eddybox.solver.run.inventory import local_shapes
 from tests.mpi_helpers import cached_results
-
-from solver.config import ConfigError
-from solver.inventory import local_shapes
-from solver.mpi_layout import (Decomposition, auto_pencil_grid, resolve_grid, split_range,
-                               transpose_buffer_points, transpose_bytes_sent)
 
 SCRIPT = os.path.join(os.path.dirname(__file__), "mpi_scripts", "transform_check.py")
 

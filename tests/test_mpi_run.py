@@ -33,7 +33,7 @@ def _run(tmp, ranks, out, *extra, check=True):
     path = tmp / "cfg.yaml"
     if not path.exists():
         path.write_text(yaml.safe_dump(CFG))
-    cmd = [sys.executable, "-m", "solver.cli", "run", str(path), "--out", str(out), "--quiet", *extra]
+    cmd = [sys.executable, "-m", "eddybox.solver.cli", "run", str(path), "--out", str(out), "--quiet", *extra]
     if ranks > 1:
         cmd = [MPIEXEC, "-n", str(ranks)] + cmd
     env = dict(os.environ, EDDYBOX_THREADS="1")

@@ -6,8 +6,8 @@ import h5py
 import numpy as np
 import pytest
 
-from particles.pairs_reader import read_pair_group, time_average
-from solver.simulation import Simulation
+from eddybox.solver.run.simulation import Simulation
+from eddybox.solver.study.readers import read_pair_group, time_average
 from tests.conftest import make_config
 
 NU = 0.025

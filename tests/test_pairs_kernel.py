@@ -17,8 +17,7 @@ from numba.core.runtime import _nrt_python, rtsys
 from scipy import stats
 from scipy.spatial import cKDTree
 
-from particles import pairs_reader
-from particles.pairs import (
+from eddybox.particles.pairs import (
     bin_centres,
     cell_count,
     collision_kernel,
@@ -29,6 +28,7 @@ from particles.pairs import (
     shell_volumes,
     wr_edges_from_rms,
 )
+from eddybox.solver.study import readers as pairs_reader
 
 L = 1.0
 

@@ -4,8 +4,13 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from particles.integrator import etd_coefficients, etd_correct, etd_predict, wrap_periodic
-from particles.interpolation import interpolate
+from eddybox.particles.integrator import (
+    etd_coefficients,
+    etd_correct,
+    etd_predict,
+    wrap_periodic,
+)
+from eddybox.particles.interpolation import interpolate
 
 L = 2.0 * np.pi
 NO_GRAVITY = np.zeros(3)

@@ -13,13 +13,12 @@ import os
 import numpy as np
 import pytest
 
+from eddybox.particles import migration as mig
+from eddybox.particles.interpolation import cell_index, interpolate
+from eddybox.particles.pairs import pair_statistics, wr_edges_from_rms
+from eddybox.solver.fluid.mpi_layout import split_range
+from eddybox.solver.fluid.serial_layout import SerialLayout
 from tests.mpi_helpers import cached_results
-
-from particles import migration as mig
-from particles.interpolation import cell_index, interpolate
-from particles.pairs import pair_statistics, wr_edges_from_rms
-from solver.layout import SerialLayout
-from solver.mpi_layout import split_range
 
 SCRIPT = os.path.join(os.path.dirname(__file__), "mpi_scripts", "particle_check.py")
 L = 2.0 * np.pi
@@ -82,7 +81,7 @@ def test_ghost_bytes_hand_counts():
     # an explicit grid: 1 x 4 splits only y (16 per rank): 64 x 28 x 64, 24 planes of 64 x 64
     cfg["parallel"]["grid"] = [1, 4]
     assert mig.ghost_field_bytes(cfg, 4, "pencil") == 3 * 8 * 64 * (64 * 28 + 24 * 64)
-    from particles.system import ghost_field_bytes
+    from eddybox.particles.system import ghost_field_bytes
 
     assert ghost_field_bytes(cfg, 1, "serial") == 0
 

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from solver.simulation import Simulation
+from eddybox.solver.run.simulation import Simulation
 
 
 def _sim(cfgf, **kw):
@@ -112,8 +112,8 @@ def test_tiny_response_time_is_stable_and_tends_to_tracers(config_factory):
 def test_physical_units_map_to_stokes_and_froude(config_factory, capsys):
     # Stokes drag: tau_p = rho_p d^2 / (18 mu) (any fluid-mechanics handbook); Kolmogorov scales
     # (nu^3/eps)^(1/4), (nu/eps)^(1/2) (Pope 2000); a 20 um water droplet in air at eps = 0.01
-    from particles.physical import physical_numbers
-    from solver.report_check import check_lines
+    from eddybox.particles.physical import physical_numbers
+    from eddybox.solver.study.check import check_lines
 
     phys = {"viscosity": 1.5e-5, "dissipation": 0.01, "fluid_density": 1.2, "gravity": 9.81}
     num = physical_numbers(10e-6, 1000.0, phys)

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 import yaml
 
-from solver.cli import main
+from eddybox.solver.cli import main
 
 OUTPUT_FILES = ("fluid.h5", "particles.h5", "pairs.h5")
 
@@ -69,7 +69,7 @@ def assert_same_outputs(a, b):
 
 
 def _cli(*args):
-    return subprocess.Popen([sys.executable, "-m", "solver.cli", *map(str, args)],
+    return subprocess.Popen([sys.executable, "-m", "eddybox.solver.cli", *map(str, args)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
@@ -212,7 +212,7 @@ def test_instability_exit_3_keeps_checkpoint(tmp_path, capsys):
 def test_write_failure_stops_cleanly_previous_checkpoint_intact(tmp_path, capsys, monkeypatch):
     import errno
 
-    import solver.checkpoint as ck
+    import eddybox.solver.run.checkpoint as ck
 
     real = ck.h5py.File
     calls = {"n": 0}
@@ -240,7 +240,8 @@ def test_write_failure_stops_cleanly_previous_checkpoint_intact(tmp_path, capsys
 def test_repair_makes_killed_files_plainly_readable(reference, tmp_path, capsys):
     path, ref_dir = reference["resilient"]
     out = tmp_path / "r"
-    p = _cli("run", path, "--out", out, "--quiet")
+    # a late end time, so the run is surely still going when it is killed
+    p = _cli("run", path, "--out", out, "--quiet", "--set", "time.end=50")
     _wait_for_samples(out / "fluid.h5", 12)
     time.sleep(0.3)
     p.kill()
@@ -258,5 +259,8 @@ def test_repair_makes_killed_files_plainly_readable(reference, tmp_path, capsys)
     pytest.importorskip("h5netcdf")
     with xr.open_dataset(out / "fluid.h5", engine="h5netcdf", group="series", phony_dims="access") as ds:
         assert ds["energy"].dims == ("time",)
-    # and the run still resumes from its checkpoint
-    assert main(["run", str(path), "--out", str(out), "--quiet", "--restart", "latest"]) == 0
+    # and the run still resumes from its checkpoint (for two more steps)
+    with h5py.File(sorted((out / "checkpoints").glob("*.h5"))[-1]) as f:
+        step = int(f.attrs["step"])
+    assert main(["run", str(path), "--out", str(out), "--quiet", "--restart", "latest",
+                 "--set", "time.end=50", "--set", f"time.max_steps={step + 2}"]) == 0

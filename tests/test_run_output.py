@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import yaml
 
-from solver.cli import main
+from eddybox.solver.cli import main
 
 CFG = {"name": "out-test", "seed": 3, "grid": {"points": 16},
        "fluid": {"viscosity": 0.03, "initial": {"kind": "spectrum", "energy": 0.5, "peak": 2}},
@@ -78,8 +78,8 @@ def test_start_from_saved_field_with_other_resolution(run_dir, tmp_path):
     field = sorted((run_dir / "fields").glob("field_*.h5"))[-1]
     with h5py.File(field) as f:
         uh = f["velocity_hat"][...]
+    from eddybox.solver.run.simulation import Simulation
     from tests.conftest import make_config
-    from solver.simulation import Simulation
 
     e_src = 0.5 * np.sum(np.where((np.arange(9) == 0) | (np.arange(9) == 8), 1, 2) * np.abs(uh) ** 2)
     for n in (16, 24):
@@ -114,7 +114,7 @@ def test_live_progress_line_on_a_terminal(tmp_path):
     p = tmp_path / "p.yaml"
     p.write_text(yaml.safe_dump(cfg))
     master, slave = pty.openpty()
-    proc = subprocess.Popen([sys.executable, "-m", "solver.cli", "run", str(p), "--out", str(tmp_path / "r")],
+    proc = subprocess.Popen([sys.executable, "-m", "eddybox.solver.cli", "run", str(p), "--out", str(tmp_path / "r")],
                             stdout=slave, stderr=slave, close_fds=True)
     os.close(slave)
     chunks = []

@@ -1,5 +1,5 @@
 """`eddybox sweep` (runs as subprocesses, skip / resume / overwrite) and `eddybox report`
-(HTML + PNG + CSV whose numbers are solver.analysis applied to the run files)."""
+(HTML + PNG + CSV whose numbers are eddybox.solver.estimators.timeseries applied to the run files)."""
 import csv
 import glob
 import math
@@ -17,11 +17,11 @@ import numpy as np
 import pytest
 import yaml
 
-from solver import analysis
-from solver.cli import main
-from solver.config import ConfigError
-from solver.report import write_report
-from solver.sweep import folder_name, plan_runs, split_values
+from eddybox.solver.cli import main
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.estimators import timeseries as analysis
+from eddybox.solver.study.report import write_report
+from eddybox.solver.study.sweep import folder_name, plan_runs, split_values
 
 CFG = {"name": "sweep-test", "seed": 5, "grid": {"points": 16},
        "fluid": {"viscosity": 0.05, "initial": {"kind": "spectrum", "energy": 0.5, "peak": 2}},
@@ -114,7 +114,7 @@ def test_second_invocation_skips_completed_runs(swept, config_file, capsys):
 
 
 def test_folder_states_decide_the_action(swept, config_file, tmp_path):
-    from solver.sweep import decide_action
+    from eddybox.solver.study.sweep import decide_action
 
     _, runs = plan_runs(config_file, VARY[1::2], [], swept)
     assert [decide_action(r, None) for r in runs] == ["skip", "skip"]
@@ -137,7 +137,7 @@ def test_interrupted_run_resumes_and_started_run_is_redone(swept, config_file, t
     out = tmp_path / "sw"
     args = ["sweep", str(config_file), *VARY, "--set", "checkpoint.every=0.1", "--out", str(out)]
     # one run at a time; SIGTERM to the sweep after the first checkpoint of the first run
-    proc = subprocess.Popen([sys.executable, "-m", "solver.cli", *args, "--jobs", "1"],
+    proc = subprocess.Popen([sys.executable, "-m", "eddybox.solver.cli", *args, "--jobs", "1"],
                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
                             env=dict(os.environ, EDDYBOX_THREADS="1"))
     ckdir = out / NAMES[0] / "checkpoints"
@@ -212,7 +212,7 @@ def test_page_references_existing_valid_pngs(report):
 
 
 def _direct(run):
-    """The table quantities computed straight from the files with solver.analysis."""
+    """The table quantities computed straight from the files with eddybox.solver.estimators.timeseries."""
     with h5py.File(run / "fluid.h5", "r") as f:
         s = {k: f["series"][k][...] for k in f["series"]}
     t = s["time"]
@@ -274,8 +274,8 @@ def test_differences_flag_exactly_the_2_sigma_ones(report):
 def test_wr_pdf_is_normalised(swept):
     # a PDF integrates to one (definition); pairs beyond the stored w_r range are left out,
     # so the integral is 1 minus the fraction outside
-    from particles.pairs_reader import read_pair_group
-    from solver.report import pdf_samples
+    from eddybox.solver.study.readers import read_pair_group
+    from eddybox.solver.study.report import pdf_samples
 
     series = read_pair_group(swept / NAMES[0] / "pairs.h5", "drops__drops")
     k = series.counts.shape[1] - 1

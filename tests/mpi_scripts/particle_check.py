@@ -14,10 +14,14 @@ import sys
 import numpy as np
 from mpi4py import MPI
 
-from particles import migration as mig
-from particles.interpolation import interpolate
-from particles.pairs import pair_statistics, wr_edges_from_rms, velocity_rms_1comp
-from solver.mpi_layout import make_distributed_layout
+from eddybox.particles import migration as mig
+from eddybox.particles.interpolation import interpolate
+from eddybox.particles.pairs import (
+    pair_statistics,
+    velocity_rms_1comp,
+    wr_edges_from_rms,
+)
+from eddybox.solver.fluid.mpi_layout import make_distributed_layout
 
 L = 2.0 * np.pi
 ORDERS = (2, 4, 6, 8)

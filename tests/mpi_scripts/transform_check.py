@@ -15,9 +15,12 @@ import tracemalloc
 import numpy as np
 from mpi4py import MPI
 
-from solver import fft
-from solver.config import ConfigError
-from solver.mpi_layout import make_distributed_layout, transpose_buffer_points
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fluid import fft
+from eddybox.solver.fluid.mpi_layout import (
+    make_distributed_layout,
+    transpose_buffer_points,
+)
 
 L = 2.0 * np.pi
 comm = MPI.COMM_WORLD

@@ -1,0 +1,151 @@
+"""Initial velocity fields, in a registry. Each builder fills the local Fourier block `uh`
+(normalised coefficients, shape (3,) + layout.spec_shape) and is layout independent: the same
+config gives the same global field on any number of ranks."""
+from __future__ import annotations
+
+import numpy as np
+
+from eddybox.solver.errors import InitialFieldError
+from eddybox.solver.fluid import spectral_ops as ops
+
+INITIAL_FIELDS: dict[str, callable] = {}
+#: config keys each kind accepts: name -> (default, description)
+INITIAL_PARAMS: dict[str, dict] = {}
+
+
+def register(name: str, **params):
+    def deco(fn):
+        INITIAL_FIELDS[name] = fn
+        INITIAL_PARAMS[name] = params
+        return fn
+
+    return deco
+
+
+def _coords(layout):
+    h = layout.length / layout.n
+    return [(layout.phys_start[a] + np.arange(layout.phys_shape[a])) * h for a in range(3)]
+
+
+def _from_physical(layout, nonlinear, comps, uh):
+    buf = nonlinear.u
+    for c in range(3):
+        buf[c][...] = comps[c]
+        layout.forward(buf[c], uh[c])
+    uh *= layout.norm
+
+
+@register("rest")
+def rest(cfg, layout, nonlinear, seed, uh):
+    """u = 0."""
+    uh[...] = 0.0
+
+
+@register("taylor-green", amplitude=(1.0, "U_0"))
+def taylor_green(cfg, layout, nonlinear, seed, uh):
+    """Taylor & Green (1937), Proc. R. Soc. A 158: u = U0 (sin x cos y cos z,
+    -cos x sin y cos z, 0), with x scaled by 2 pi / L. All modes sit at |k|^2 = 3 k0^2."""
+    u0 = float(cfg.get("amplitude", 1.0))
+    x, y, z = _coords(layout)
+    k = layout.k0
+    X, Y, Z = np.meshgrid(k * x, k * y, k * z, indexing="ij", sparse=True)
+    comps = [u0 * np.sin(X) * np.cos(Y) * np.cos(Z), -u0 * np.cos(X) * np.sin(Y) * np.cos(Z), 0.0]
+    _from_physical(layout, nonlinear, comps, uh)
+
+
+@register("abc", a=(1.0, "A"), b=(1.0, "B"), c=(1.0, "C"))
+def abc(cfg, layout, nonlinear, seed, uh):
+    """Arnold-Beltrami-Childress flow (Dombre et al. 1986, J. Fluid Mech. 167):
+    u = (A sin kz + C cos ky, B sin kx + A cos kz, C sin ky + B cos kx), k = 2 pi / L.
+    It is a Beltrami field (curl u = k u), so u x omega = 0 and it decays as exp(-nu k^2 t)."""
+    a, b, c = (float(cfg.get(n, 1.0)) for n in "abc")
+    x, y, z = _coords(layout)
+    k = layout.k0
+    X, Y, Z = np.meshgrid(k * x, k * y, k * z, indexing="ij", sparse=True)
+    comps = [a * np.sin(Z) + c * np.cos(Y), b * np.sin(X) + a * np.cos(Z),
+             c * np.sin(Y) + b * np.cos(X)]
+    _from_physical(layout, nonlinear, [np.broadcast_to(v, layout.phys_shape) for v in comps], uh)
+
+
+@register("spectrum", energy=(0.5, "total kinetic energy E_0"), peak=(3.0, "k_p in units of 2 pi / L"))
+def spectrum(cfg, layout, nonlinear, seed, uh):
+    """Random solenoidal field with the model spectrum E(k) ~ k^4 exp(-2 (k/k_p)^2)
+    (a common initial spectrum for decaying and forced DNS; e.g. Rogallo 1981), scaled to the
+    given energy. Gaussian white noise per mode with amplitude sqrt(E(k) / (4 pi k^2)),
+    projected to be solenoidal; Hermitian symmetry on the kz = 0 plane is enforced from a
+    plane drawn identically on every rank; other planes are drawn per kx plane from
+    generators keyed by (seed, plane) so any block decomposition sees the same field."""
+    e0 = float(cfg.get("energy", 0.5))
+    kp = float(cfg.get("peak", 3.0))
+    n, nh = layout.n, layout.n // 2 + 1
+    sx, sy, sz = layout.spec_start
+    nx, ny, nz = layout.spec_shape
+    for li in range(nx):
+        gi = sx + li
+        rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, 0x1A17, gi])))
+        plane = rng.standard_normal((3, n, nh, 2))
+        uh[:, li] = (plane[..., 0] + 1j * plane[..., 1])[:, sy:sy + ny, sz:sz + nz]
+    if sz == 0:
+        rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, 0x1A18])))
+        p0 = rng.standard_normal((3, n, n, 2))
+        p0 = p0[..., 0] + 1j * p0[..., 1]
+        idx = np.fft.fftfreq(n, 1.0 / n).astype(int)
+        mi = np.mod(-idx, n)
+        # Hermitian plane: average the value at k with the conjugate at -k (keeps unit variance
+        # per independent mode up to a factor fixed by the final energy scaling)
+        herm = (p0 + np.conj(p0[:, mi][:, :, mi])) / np.sqrt(2.0)
+        herm[:, 0, 0] = herm[:, 0, 0].real
+        uh[:, :, :, 0] = herm[:, sx:sx + nx, sy:sy + ny]
+    kk = np.sqrt(layout.kx[:, None, None] ** 2 + layout.ky[None, :, None] ** 2
+                 + layout.kz[None, None, :] ** 2) / layout.k0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        amp = np.where(kk > 0, np.sqrt(kk**4 * np.exp(-2.0 * (kk / kp) ** 2) / (4 * np.pi * kk**2)), 0.0)
+    uh *= amp
+    ops.project_solenoidal(uh, layout.kx, layout.ky, layout.kz)
+    nonlinear.keep_mask_apply(uh)
+    e = layout.sum(energy_local(uh, layout))
+    if e > 0:
+        uh *= np.sqrt(e0 / e)
+
+
+@register("file", path=(None, "field snapshot or checkpoint written by eddybox"))
+def from_file(cfg, layout, nonlinear, seed, uh):
+    """Velocity from an eddybox field snapshot or checkpoint (dataset `velocity_hat`, global
+    half-complex coefficients). A different N is handled by spectral truncation (coarser
+    target) or zero padding (finer target); the box length must match."""
+    import h5py
+
+    path = cfg.get("path")
+    try:
+        with h5py.File(path, "r") as f:
+            if "velocity_hat" not in f:
+                raise InitialFieldError(f"{path}: no dataset 'velocity_hat' (not an eddybox field or checkpoint)")
+            ds = f["velocity_hat"]
+            n_src = int(ds.shape[1])
+            length = float(ds.attrs.get("length", layout.length))
+            if abs(length - layout.length) > 1e-12 * layout.length:
+                raise InitialFieldError(f"{path}: box length {length} differs from grid.length {layout.length}")
+            full = ds[...]
+    except (OSError, RuntimeError) as exc:
+        raise InitialFieldError(f"{path}: cannot read ({exc})") from None
+    n = layout.n
+    src_idx = np.fft.fftfreq(n_src, 1.0 / n_src).astype(int)
+    dst_idx = np.fft.fftfreq(n, 1.0 / n).astype(int)
+    m = min(n_src, n) // 2  # keep |k_i| < m on both grids (drops both Nyquist planes)
+    glob = np.zeros((3, n, n, n // 2 + 1), complex)
+    sel_s = np.nonzero(np.abs(src_idx) < m)[0]
+    sel_d = np.array([np.nonzero(dst_idx == src_idx[i])[0][0] for i in sel_s])
+    glob[:, sel_d[:, None, None], sel_d[None, :, None], np.arange(m)[None, None, :]] = \
+        full[:, sel_s[:, None, None], sel_s[None, :, None], np.arange(m)[None, None, :]]
+    layout.scatter_spectral(glob, uh)
+    nonlinear.keep_mask_apply(uh)
+
+
+def energy_local(uh, layout) -> float:
+    """1/2 sum |u_k|^2 over this rank's block with the Hermitian weights."""
+    return float(ops.energy_sum(uh, layout.wz))
+
+
+def build_initial(cfg: dict, layout, nonlinear, seed: int, uh):
+    INITIAL_FIELDS[cfg["kind"]](cfg, layout, nonlinear, seed, uh)
+    return uh

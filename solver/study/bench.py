@@ -1,0 +1,266 @@
+"""`eddybox bench`: performance ratios measured side by side in one run on this machine.
+
+Sections (each a function returning a dict of named figures):
+  fluid      one RK4 step against the FFT floor (the same plans doing only the 36 real 3-D
+             transforms of a step), against a straightforward numpy.fft step with temporary
+             arrays, and peak memory per grid point for RK4 and low-storage RK3
+  particles  order-8 interpolation of three components (eddybox.solver.study.bench_interp)
+  pairs      pair statistics against a cKDTree + numpy pipeline (eddybox.solver.study.bench_pairs)
+  scaling    strong scaling over MPI ranks and bytes moved by the transposes
+  estimate   accuracy of `eddybox estimate` against measured runs
+"""
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+from eddybox.solver.study.calibration import (
+    benchmark_simulation,
+    best_time,
+    calibrate,
+    calibration_path,
+    measure_fluid_points,
+    peak_rss_bytes,
+)
+
+BENCHES: dict[str, callable] = {}
+#: the cost-model calibration measured by the `estimate` section, saved for `eddybox estimate`
+_LAST_CALIBRATION: dict = {}
+
+
+def register(name):
+    def deco(fn):
+        BENCHES[name] = fn
+        return fn
+
+    return deco
+
+
+def numpy_reference_step(uh, kx, ky, kz, nu, dt, n):
+    """RK4 with integrating factor written the straightforward way: numpy.fft and temporary
+    arrays everywhere (what a first implementation looks like). Returns the new uh."""
+    k2 = kx[:, None, None] ** 2 + ky[None, :, None] ** 2 + kz[None, None, :] ** 2
+    kvec = [kx[:, None, None], ky[None, :, None], kz[None, None, :]]
+    k2s = np.where(k2 == 0, 1.0, k2)
+    ik = np.abs(np.fft.fftfreq(n, 1.0 / n))
+    keep = (3 * ik[:, None, None] < n) & (3 * ik[None, :, None] < n) & (3 * np.arange(n // 2 + 1)[None, None, :] < n)
+
+    def rhs(v):
+        u = np.fft.irfftn(v, s=(n, n, n), axes=(1, 2, 3)) * n**3
+        w = np.stack([1j * (kvec[1] * v[2] - kvec[2] * v[1]), 1j * (kvec[2] * v[0] - kvec[0] * v[2]),
+                      1j * (kvec[0] * v[1] - kvec[1] * v[0])])
+        w = np.fft.irfftn(w, s=(n, n, n), axes=(1, 2, 3)) * n**3
+        c = np.cross(u, w, axis=0)
+        ch = np.fft.rfftn(c, axes=(1, 2, 3)) / n**3 * keep
+        d = (kvec[0] * ch[0] + kvec[1] * ch[1] + kvec[2] * ch[2]) / k2s
+        return np.stack([ch[i] - kvec[i] * d for i in range(3)])
+
+    e = np.exp(-nu * k2 * dt)
+    eh = np.exp(-nu * k2 * dt / 2)
+    k1 = rhs(uh)
+    k2_ = rhs(eh * (uh + dt / 2 * k1))
+    k3 = rhs(eh * uh + dt / 2 * k2_)
+    k4 = rhs(e * uh + dt * eh * k3)
+    return e * uh + dt / 6 * (e * k1 + 2 * eh * k2_ + 2 * eh * k3 + k4)
+
+
+def _fluid_point(n, repeats, with_numpy):
+    sim = benchmark_simulation(n)
+    sim.advance()  # compile kernels, warm caches
+    t_step = best_time(sim.advance, repeats)
+    lay, nl = sim.layout, sim.nl
+
+    def floor():
+        for _ in range(4):
+            for c in range(3):
+                lay.inverse(lay.scratch, nl.u[c])
+            for c in range(3):
+                lay.inverse(lay.scratch, nl.w[c])
+            for c in range(3):
+                lay.forward(nl.w[c], lay.scratch)
+
+    t_floor = best_time(floor, repeats)
+    out = {f"step_seconds_{n}": t_step, f"fft_floor_seconds_{n}": t_floor,
+           f"step_over_fft_floor_{n}": t_step / t_floor}
+    if with_numpy:
+        uh = sim.uh.copy()
+        t_np = best_time(lambda: numpy_reference_step(uh, lay.kx, lay.ky, lay.kz, sim.nu, 1e-3, n),
+                     max(1, repeats // 2))
+        out[f"numpy_step_seconds_{n}"] = t_np
+        out[f"step_speedup_vs_numpy_{n}"] = t_np / t_step
+    return out
+
+
+def peak_bytes_per_point(n, scheme, n_small=None):
+    """Memory per grid point: the growth of the peak resident memory between an n_small^3 and
+    an n^3 run, divided by the growth in points (the interpreter, libraries and compiled
+    kernels cancel out; this is what decides whether 512^3 fits)."""
+    n_small = n_small or max(16, n // 4)
+    big, small = peak_rss_bytes(n, scheme), peak_rss_bytes(n_small, scheme)
+    return (big - small) / float(n**3 - n_small**3)
+
+
+@register("fluid")
+def bench_fluid(quick=False):
+    sizes = (64,) if quick else (64, 128)
+    out = {}
+    for n in sizes:
+        out.update(_fluid_point(n, 2 if quick else 3, with_numpy=True))
+    big = sizes[-1]
+    out["step_over_fft_floor"] = out[f"step_over_fft_floor_{big}"]
+    out["step_speedup_vs_numpy"] = out[f"step_speedup_vs_numpy_{big}"]
+    out["bytes_per_point_rk4"] = peak_bytes_per_point(big, "rk4")
+    out["bytes_per_point_rk3"] = peak_bytes_per_point(big, "rk3")
+    out["bytes_per_point"] = out["bytes_per_point_rk4"]
+    return out
+
+
+@register("particles")
+def bench_particles(quick=False):
+    from eddybox.solver.study.bench_interp import bench_interpolation
+
+    return bench_interpolation(n_particles=2 * 10**5 if quick else 10**6, n=64 if quick else 128)
+
+
+@register("pairs")
+def bench_pairs_section(quick=False):
+    from eddybox.solver.study.bench_pairs import bench_pairs
+
+    return bench_pairs(n_particles=10**5 if quick else 10**6, repeats=2 if quick else 1)
+
+
+def run_bench(quick=False, json_path=None, sections=None) -> int:
+    import platform
+
+    from eddybox.solver.fluid.fft import available_cores, thread_count
+
+    results = {"machine": {"cores": available_cores(), "threads": thread_count(),
+                           "python": platform.python_version(), "quick": bool(quick)}}
+    for name, fn in BENCHES.items():
+        if sections and name not in sections:
+            continue
+        t0 = time.perf_counter()
+        print(f"[bench] {name} ...", flush=True)
+        try:
+            res = fn(quick=quick)
+        except Exception as exc:  # noqa: BLE001 - a failing section is reported, not fatal
+            res = {"error": f"{type(exc).__name__}: {exc}"}
+        res["section_seconds"] = time.perf_counter() - t0
+        results[name] = res
+        for k, v in res.items():
+            print(f"  {k:40s} {v:.4g}" if isinstance(v, (int, float)) else f"  {k:40s} {v}", flush=True)
+    if _LAST_CALIBRATION:
+        cal = dict(_LAST_CALIBRATION)
+        if results.get("particles", {}).get("interp_particles_per_second"):
+            cal["interp_seconds_per_particle"] = 1.0 / results["particles"]["interp_particles_per_second"]
+        if results.get("pairs", {}).get("pairs_per_second"):
+            cal["pair_seconds"] = 1.0 / results["pairs"]["pairs_per_second"]
+        path = calibration_path()
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(cal, indent=2))
+        print(f"cost-model calibration written to {path} (used by eddybox estimate)")
+    if json_path:
+        with open(json_path, "w") as fh:
+            json.dump(results, fh, indent=2, default=float)
+        print(f"figures written to {json_path}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    run_bench(quick="--quick" in sys.argv)
+
+
+def _mpi_step_seconds(n, ranks, repeats=3, layout="auto"):
+    """Median-free best step time of an n^3 RK4 step on `ranks` MPI ranks (1 thread each),
+    and the bytes each rank sends per step in the transposes."""
+    code = (
+        "import json, os\n"
+        "from mpi4py import MPI\n"
+        "from eddybox.solver.run.config import validate\n"
+        "from eddybox.solver.run.simulation import Simulation\n"
+        "import tempfile\n"
+        "comm = MPI.COMM_WORLD\n"
+        "out = comm.bcast(tempfile.mkdtemp(prefix='eddybox-scal-') if comm.rank == 0 else None)\n"
+        f"cfg = validate({{'name': 'scal', 'grid': {{'points': {n}}}, 'fluid': {{'viscosity': 0.01}},"
+        f" 'forcing': {{'kind': 'ou', 'band': 2.0, 'dissipation': 0.1}}, 'time': {{'end': 1e9}},"
+        f" 'stats': {{'fluid': {{'every': None}}, 'spectra': {{'every': None}}}},"
+        f" 'parallel': {{'layout': {layout!r}}}, 'output': out}})\n"
+        "sim = Simulation(cfg, overwrite=True, quiet=True, comm=comm if comm.size > 1 else None)\n"
+        "sim.advance()\n"
+        "import time\n"
+        "best = 1e30\n"
+        f"for _ in range({repeats}):\n"
+        "    comm.Barrier(); t0 = time.perf_counter(); sim.advance(); comm.Barrier()\n"
+        "    best = min(best, time.perf_counter() - t0)\n"
+        "moved = sim.layout.bytes_moved_per_transform() if hasattr(sim.layout, 'bytes_moved_per_transform') else 0\n"
+        "if comm.rank == 0: print(json.dumps({'seconds': best, 'bytes_per_transform': moved,"
+        " 'layout': sim.layout.summary()}))\n")
+    env = dict(os.environ, EDDYBOX_THREADS="1")
+    mpiexec = os.path.join(os.path.dirname(sys.executable), "mpiexec")
+    cmd = [mpiexec, "-n", str(ranks), sys.executable, "-c", code]
+    r = subprocess.run(cmd, capture_output=True, text=True, timeout=3600, env=env)
+    if r.returncode != 0:
+        raise RuntimeError(r.stderr[-2000:])
+    return json.loads(r.stdout.strip().splitlines()[-1])
+
+
+@register("scaling")
+def bench_scaling(quick=False):
+    """Strong scaling at 128^3 (64^3 with --quick) on 1, 2 and (oversubscribed) 4 ranks."""
+    n = 64 if quick else 128
+    out = {"scaling_points": n}
+    base = None
+    for p in (1, 2, 4):
+        res = _mpi_step_seconds(n, p, repeats=2 if quick else 3)
+        t = res["seconds"]
+        base = base or t
+        out[f"step_seconds_{p}_ranks"] = t
+        out[f"speedup_{p}_ranks"] = base / t
+        out[f"efficiency_{p}_ranks"] = base / t / p
+        # 4 stages x 9 transforms per RK4 step
+        out[f"transpose_bytes_per_step_{p}_ranks"] = 36 * res["bytes_per_transform"]
+    out["note_4_ranks"] = "4 ranks on 2 cores are oversubscribed: efficiency below 0.5 is expected"
+    return out
+
+
+@register("estimate")
+def bench_estimate(quick=False):
+    """Relative error of `eddybox estimate` against measured 64^3 and 96^3 runs, with the model
+    calibrated only on other sizes (time) and the memory overhead taken from other sizes."""
+    from eddybox.solver.run.config import validate
+    from eddybox.solver.run.inventory import predicted_inventory
+    from eddybox.solver.study import estimate as est
+
+    cal_sizes = (24, 32, 48, 80) if quick else (32, 48, 80, 112)
+    cal = calibrate(cal_sizes, save=False)
+    cfg = validate({"grid": {"points": 64}, "fluid": {"viscosity": 0.01},
+                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}}).data
+    over = []
+    for n in cal_sizes[:2]:
+        inv = sum(predicted_inventory(dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})).values())
+        over.append(peak_rss_bytes(n, "rk4") - inv)
+    cal["memory_overhead_bytes"] = float(np.median(over))
+    _LAST_CALIBRATION.clear()
+    _LAST_CALIBRATION.update(cal)
+    out = {"calibration_sizes": list(cal_sizes)}
+    t_err, m_err = [], []
+    for n in (64, 96):
+        measured = measure_fluid_points((n,))[0]["step_seconds"]
+        predicted, _ = est.step_time(cal, n, 1, "rk4")
+        mem_measured = peak_rss_bytes(n, "rk4")
+        c = dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})
+        mem_predicted = sum(predicted_inventory(c).values()) + cal["memory_overhead_bytes"]
+        out[f"step_seconds_measured_{n}"] = measured
+        out[f"step_seconds_predicted_{n}"] = predicted
+        out[f"memory_measured_{n}"] = mem_measured
+        out[f"memory_predicted_{n}"] = mem_predicted
+        t_err.append(abs(predicted / measured - 1))
+        m_err.append(abs(mem_predicted / mem_measured - 1))
+    out["estimate_time_error"] = max(t_err)
+    out["estimate_memory_error"] = max(m_err)
+    return out

@@ -1,0 +1,55 @@
+"""`eddybox check`: the resolved config, derived scales, memory and warnings, before any
+time is spent."""
+from __future__ import annotations
+
+import math
+
+from eddybox.solver.run import scales
+from eddybox.solver.run.inventory import human_bytes, predicted_inventory
+
+
+def check_lines(cfg) -> list[str]:
+    d = cfg.data
+    out = [f"config {cfg.source}: valid", f"  {cfg.summary()}", "", "resolved config:"]
+    out += ["  " + line for line in cfg.to_yaml().rstrip().splitlines()]
+    p = scales.predicted(d)
+    out += ["", "derived scales (predicted from the config):",
+            f"  grid spacing dx            {p['dx']:.5g}",
+            f"  k_max after dealiasing     {p['kmax']:.5g}"]
+    warnings = []
+    if "eta" in p:
+        out += [f"  target dissipation eps     {p['target_dissipation']:.5g}  (from forcing)",
+                f"  Kolmogorov length eta      {p['eta']:.5g}  = (nu^3/eps)^(1/4)",
+                f"  Kolmogorov time tau_eta    {p['tau_eta']:.5g}  = (nu/eps)^(1/2)",
+                f"  k_max eta                  {p['kmax_eta']:.3g}",
+                f"  u' (estimate)              {p['u_rms_estimate']:.3g}  from eps = {scales.C_EPS} u'^3/L, L = {scales.INTEGRAL_OVER_FORCING_WAVELENGTH} x forcing wavelength",
+                f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))"]
+        if p["kmax_eta"] < 1.0:
+            warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
+                            "resolved; use more grid.points or a larger fluid.viscosity "
+                            f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * d['grid']['length'] / (2 * math.pi))})")
+    else:
+        out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
+    from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
+
+    bound = spectral_cfl_bound(SCHEMES[d["time"]["scheme"]])
+    if d["time"]["cfl"] > bound:
+        warnings.append(f"time.cfl = {d['time']['cfl']} is above {bound:.2f}, the stability bound of "
+                        f"{d['time']['scheme']} for pseudo-spectral advection; the run may become "
+                        "unstable (exit code 3)")
+    from eddybox.particles.physical import particle_lines
+
+    plines, pwarn = particle_lines(cfg, p)
+    out += plines
+    warnings += pwarn
+    inv = predicted_inventory(d)
+    total = sum(inv.values())
+    n3 = d["grid"]["points"] ** 3
+    out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
+    out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
+    out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
+    return out
+
+
+def print_check(cfg):
+    print("\n".join(check_lines(cfg)))

@@ -1,0 +1,113 @@
+"""`eddybox inspect`: a human summary of any eddybox output file or run folder."""
+from __future__ import annotations
+
+import os
+
+import h5py
+import numpy as np
+
+from eddybox.solver.errors import ConfigError
+
+
+def _attrs_line(f):
+    a = f.attrs
+    return (f"  written by eddybox {a.get('code_version', '?')} at {a.get('created', '?')}, "
+            f"config hash {a.get('config_hash', '?')}")
+
+
+def _series(f, lines):
+    g = f["series"]
+    n = g["time"].shape[0]
+    lines.append(f"  {n} samples, t = {g['time'][0]:.6g} .. {g['time'][-1]:.6g}" if n else "  no samples yet")
+    if n:
+        lines.append(f"  {'series':16s} {'units':10s} {'first':>12s} {'last':>12s} {'mean':>12s}")
+        for k, d in g.items():
+            v = d[...]
+            lines.append(f"  {k:16s} {d.attrs.get('units', ''):10s} {v[0]:12.5g} {v[-1]:12.5g} "
+                         f"{np.mean(v):12.5g}")
+
+
+def _generic(f, lines):
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset):
+            lines.append(f"  {name:40s} {str(obj.shape):18s} {obj.dtype}  "
+                         f"[{obj.attrs.get('units', '')}] {obj.attrs.get('description', '')}"[:150])
+
+    f.visititems(visit)
+
+
+def _pairs_summary(path):
+    """Per group: samples, and per separation bin the time-averaged g(r), <w_r^2>, <|w_r|>
+    and the collision kernel with standard errors from the spread over samples
+    (eddybox.solver.study.readers)."""
+    from eddybox.solver.study.readers import (
+        list_pair_groups,
+        read_pair_group,
+        time_average,
+    )
+
+    lines = []
+    for name in list_pair_groups(path):
+        series = read_pair_group(path, name)
+        n = series.n_samples
+        lines.append(f"  pairs {name}: {n} samples"
+                     + (f", t = {series.time[0]:.4g} .. {series.time[-1]:.4g}" if n else ""))
+        if not n:
+            continue
+        avg = time_average(series)
+        edges = series.r_edges
+        lines.append(f"    {'r_lo':>9s} {'r_hi':>9s} {'pairs':>10s} {'g(r)':>16s} {'<w_r^2>':>11s} "
+                     f"{'<|w_r|>':>11s} {'kernel':>11s}   (r in {series.units.get('r_edges', '')})")
+        for i in range(len(edges) - 1):
+            lines.append(f"    {edges[i]:9.4g} {edges[i + 1]:9.4g} {avg.counts[i]:10d} "
+                         f"{avg.rdf[i]:8.4g}±{avg.rdf_err[i]:<7.2g} {avg.wr_sq[i]:11.4g} "
+                         f"{avg.wr_abs[i]:11.4g} {avg.kernel[i]:11.4g}")
+    return lines
+
+
+def inspect_file(path) -> str:
+    lines = [f"{path}:"]
+    from eddybox.solver.run.repair import needs_repair
+
+    if needs_repair(path):
+        lines.append("  not closed by its writer (killed run): readable with h5py.File(path, 'r', "
+                     "swmr=True); 'eddybox inspect --repair' makes it readable everywhere")
+    try:
+        f = h5py.File(path, "r", swmr=True)
+    except (OSError, RuntimeError) as exc:
+        raise ConfigError(f"{path}: not a readable HDF5 file ({exc})") from None
+    with f:
+        if f.attrs.get("producer") != "eddybox":
+            raise ConfigError(f"{path}: an HDF5 file, but not one written by eddybox")
+        lines.append(_attrs_line(f))
+        if "series" in f:
+            _series(f, lines)
+        if "pairs" in f:
+            lines += _pairs_summary(path)
+        elif "velocity_hat" in f:
+            a = f.attrs
+            if "step" in a:
+                lines.append(f"  t = {a.get('time')}, step {a.get('step')}, "
+                             f"grid {f['velocity_hat'].shape[1]}^3")
+            _generic(f, lines)
+        elif "series" not in f:
+            _generic(f, lines)
+    return "\n".join(lines)
+
+
+def inspect_path(path) -> str:
+    if not os.path.exists(path):
+        raise ConfigError(f"{path}: no such file or folder")
+    if os.path.isdir(path):
+        out = [f"run folder {path}:"]
+        files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5")
+                 if os.path.exists(os.path.join(path, n))]
+        if not files and not os.path.exists(os.path.join(path, "config.yaml")):
+            raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")
+        ck = os.path.join(path, "checkpoints")
+        if os.path.isdir(ck):
+            out.append(f"  checkpoints: {', '.join(sorted(os.listdir(ck))) or 'none'}")
+        for n in files:
+            out.append(inspect_file(os.path.join(path, n)))
+        return "\n".join(out)
+    return inspect_file(path)

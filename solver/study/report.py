@@ -1,0 +1,741 @@
+"""`eddybox report`: runs side by side as one self-contained HTML page with PNG figures and a
+CSV table.
+
+    write_report(["runs/a", "runs/b"], "runs/compare")
+        -> index.html, timeseries.png, spectra.png, pairs_<a>__<b>.png, summary.csv
+
+Every number is a stationary mean with a standard error from eddybox.solver.estimators.timeseries: MSER-5 removes
+the initial transient, Flyvbjerg-Petersen blocking gives the error bar of the correlated rest.
+The table quantities are a registry (`QUANTITIES`, filled by `@quantity`), so a new one is a
+function of the fluid series returning an `Estimate`. Figures are drawn with matplotlib's Agg
+canvas directly (no pyplot state, no display needed).
+"""
+from __future__ import annotations
+
+import csv
+import datetime
+import html
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import yaml
+
+from eddybox.solver import __version__
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.estimators import timeseries as analysis
+from eddybox.solver.study.readers import check_run_dir, open_output, read_fluid_series, read_spectra
+
+KOLMOGOROV_C = 1.5  # E(k) = C eps^(2/3) k^(-5/3) in the inertial range; Pope (2000) §6.5 (from memory)
+COLOURS = ["#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2",
+           "#7f7f7f", "#bcbd22", "#17becf"]  # matplotlib's tab10, fixed so every figure agrees
+
+
+# --- estimates -----------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Estimate:
+    """A stationary mean and its standard error (NaN when it cannot be computed)."""
+
+    mean: float
+    stderr: float
+    start_time: float = math.nan
+    converged: bool = False
+    note: str = ""
+
+    @classmethod
+    def missing(cls, note):
+        return cls(math.nan, math.nan, note=note)
+
+    @classmethod
+    def from_summary(cls, s: analysis.Summary):
+        return cls(s.mean, s.stderr, s.start_time, s.converged, s.note)
+
+
+@dataclass(frozen=True)
+class BinnedEstimate:
+    """Per-bin stationary means and standard errors; bins that cannot be estimated are NaN."""
+
+    mean: np.ndarray
+    stderr: np.ndarray
+    start_time: float = math.nan
+    converged: bool = False
+    note: str = ""
+
+
+def stationary(times, values) -> Estimate:
+    """analysis.stationary_summary of one series, or a NaN estimate saying why not."""
+    v = np.asarray(values, dtype=float)
+    if v.size < 2:
+        return Estimate.missing("fewer than 2 samples")
+    if not np.all(np.isfinite(v)):
+        return Estimate.missing("the series has non-finite values")
+    try:
+        return Estimate.from_summary(analysis.stationary_summary(times, v))
+    except ValueError as exc:
+        return Estimate.missing(str(exc))
+
+
+def stationary_bins(times, values) -> BinnedEstimate:
+    """analysis.stationary_summary_bins on the bins that are finite at every sample."""
+    v = np.asarray(values, dtype=float)
+    nan = np.full(v.shape[1:], np.nan)
+    if v.shape[0] < 2:
+        return BinnedEstimate(nan, nan.copy(), note="fewer than 2 samples")
+    cols = np.all(np.isfinite(v), axis=0)
+    if not cols.any():
+        return BinnedEstimate(nan, nan.copy(), note="no bin is finite at every sample")
+    try:
+        s = analysis.stationary_summary_bins(times, v[:, cols])
+    except ValueError as exc:
+        return BinnedEstimate(nan, nan.copy(), note=str(exc))
+    mean, err = nan.copy(), nan.copy()
+    mean[cols], err[cols] = s.mean, s.stderr
+    return BinnedEstimate(mean, err, s.start_time, s.converged and cols.all(), s.note)
+
+
+# --- the table quantities ------------------------------------------------------------------
+@dataclass(frozen=True)
+class Quantity:
+    key: str
+    label: str
+    units: str
+    definition: str
+    estimate: Callable[[dict], Estimate]
+
+
+QUANTITIES: dict[str, Quantity] = {}
+
+
+def quantity(key, label, units, definition):
+    """Register `func(series) -> Estimate` as a table quantity."""
+
+    def register(func):
+        QUANTITIES[key] = Quantity(key, label, units, definition, func)
+        return func
+
+    return register
+
+
+def _mean_of(name):
+    return lambda s: stationary(s["time"], s[name])
+
+
+for _key, _label, _units, _definition in [
+        ("energy", "E", "L² T⁻²", "kinetic energy <u·u>/2 (fluid.h5 energy)"),
+        ("dissipation", "ε", "L² T⁻³", "dissipation 2ν Σ k² E(k) (fluid.h5 dissipation)"),
+        ("u_rms", "u′", "L T⁻¹", "r.m.s. velocity √(2E/3) (fluid.h5 u_rms)"),
+        ("integral_scale", "L", "L", "integral scale π/(2u′²) ∫E(k)/k dk (fluid.h5 integral_scale)")]:
+    QUANTITIES[_key] = Quantity(_key, _label, _units, _definition, _mean_of(_key))
+
+
+@quantity("eddy_time", "T<sub>E</sub> = L/u′", "T",
+          "large-eddy turnover time, the stationary mean of L/u′ taken sample by sample")
+def _eddy_time(s):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return stationary(s["time"], s["integral_scale"] / s["u_rms"])
+
+
+for _key, _label, _units, _definition in [
+        ("taylor_scale", "λ", "L", "Taylor microscale √(15ν u′²/ε) (fluid.h5 taylor_scale)"),
+        ("re_lambda", "Re<sub>λ</sub>", "1", "Taylor-scale Reynolds number u′λ/ν (fluid.h5 re_lambda)"),
+        ("eta", "η", "L", "Kolmogorov length (ν³/ε)^(1/4) (fluid.h5 eta)"),
+        ("kmax_eta", "k<sub>max</sub>η", "1", "resolution: largest dealiased wavenumber times η"),
+        ("skewness", "S", "1", "longitudinal velocity-derivative skewness, mean over x, y, z")]:
+    QUANTITIES[_key] = Quantity(_key, _label, _units, _definition, _mean_of(_key))
+
+
+@quantity("isotropy", "max/min E<sub>i</sub>", "1",
+          "isotropy: max(E_x, E_y, E_z)/min(E_x, E_y, E_z) per sample, then the stationary "
+          "mean (1 for an isotropic field)")
+def _isotropy(s):
+    comp = np.stack([s["energy_x"], s["energy_y"], s["energy_z"]])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return stationary(s["time"], comp.max(axis=0) / comp.min(axis=0))
+
+
+@quantity("injection_cv", "σ<sub>P</sub>/⟨P⟩", "1",
+          "fluctuation of the injected power P: its standard deviation over the stationary "
+          "window divided by its mean")
+def injection_fluctuation(s) -> Estimate:
+    """Coefficient of variation c = σ/m of the injection P over its stationary window.
+
+    The window is the MSER-5 truncation of P (White 1997, Simulation 69:323; White, Cobb &
+    Spratt 2000) on the uniform grid of analysis.uniform_samples; m is the window mean and
+    σ² = <(P - m)²> (ddof 0). Standard errors of m and of σ² are Flyvbjerg & Petersen (1989,
+    J. Chem. Phys. 91:461) blocking errors of the means of P and of (P - m)², combined by
+    first-order error propagation (the delta method; e.g. Bevington & Robinson 2003, Data
+    Reduction and Error Analysis, ch. 3), neglecting their covariance:
+
+        dc = c sqrt( (d(σ²) / (2σ²))² + (dm / m)² ).
+    """
+    t, p = s["time"], s["injection"]
+    base = stationary(t, p)
+    if not math.isfinite(base.mean):
+        return base
+    _, pu, _ = analysis.uniform_samples(t, p)
+    summ = analysis.stationary_summary(t, p)
+    w = pu[summ.start_index:]
+    m = float(w.mean())
+    dev2 = (w - m) ** 2
+    var = float(dev2.mean())
+    if m == 0.0:
+        return Estimate.missing("no power injected (mean injection is 0)")
+    cv = math.sqrt(var) / abs(m)
+    if var == 0.0:
+        return Estimate(0.0, 0.0, summ.start_time, summ.converged, summ.note)
+    dvar = float(analysis.block_average(dev2).stderr)
+    err = cv * math.hypot(dvar / (2.0 * var), summ.stderr / m)
+    return Estimate(cv, err, summ.start_time, summ.converged, summ.note)
+
+
+# --- reading runs --------------------------------------------------------------------------
+def fluid_estimates(series: dict, keys=None) -> dict:
+    """{key: Estimate} for the registered quantities (all, or `keys`)."""
+    return {k: QUANTITIES[k].estimate(series) for k in (keys or QUANTITIES)}
+
+
+def mean_spectrum(spectra, t_start):
+    """Equal-weight mean of the spectra at t >= t_start (the last one if none is that late)."""
+    k, t, e = spectra
+    if t.size == 0:
+        return None
+    keep = t >= t_start if math.isfinite(t_start) else np.ones(t.size, bool)
+    if not keep.any():
+        keep = t == t[-1]
+    return k, e[keep].mean(axis=0), int(keep.sum())
+
+
+@dataclass
+class PdfEstimate:
+    r_eta: float
+    bin: int
+    rms: float
+    x_edges: np.ndarray
+    pdf: BinnedEstimate
+
+
+@dataclass
+class PairStats:
+    """Stationary pair statistics of one set pair of one run (r in Kolmogorov lengths)."""
+
+    group: str
+    r_edges_eta: np.ndarray
+    r_eta: np.ndarray
+    n_samples: int
+    rdf: BinnedEstimate
+    kernel: BinnedEstimate
+    pdfs: list
+    attrs: dict
+
+
+def pair_samples(series):
+    """Per-sample g(r) and K(r) as averaged by the report. K is NaN in a bin without pairs
+    (no <|w_r|>); there g = 0, so K = 2 pi r^2 g <|w_r|> = 0 and is counted as such."""
+    kernel = np.where(series.counts == 0, 0.0, series.kernel)
+    return np.asarray(series.rdf, float), kernel
+
+
+def pdf_samples(series, k):
+    """Per-sample PDFs of x = w_r / sigma in r-bin k: (times, pdf samples x w-bins, sigma,
+    x edges). Pairs beyond the w_r range (wr_under / wr_over) are left out of the end bins, so
+    each PDF integrates to the fraction inside the range; sigma = sqrt(<w_r^2>) of the bin
+    averaged over all samples with pairs. Samples without pairs in the bin are dropped."""
+    hist = series.wr_hist[:, k, :].astype(float)
+    if series.wr_under is not None and series.wr_over is not None:
+        hist[:, 0] -= series.wr_under[:, k]
+        hist[:, -1] -= series.wr_over[:, k]
+    total = series.counts[:, k].astype(float)
+    ok = total > 0
+    sq = series.wr_sq[ok, k]
+    sigma = float(np.sqrt(np.mean(sq))) if sq.size else math.nan
+    x_edges = series.wr_edges / sigma
+    pdf = hist[ok] / (total[ok, None] * np.diff(x_edges)[None, :])
+    return series.time[ok], pdf, sigma, x_edges
+
+
+def _nearest_log(centres, target):
+    return int(np.argmin(np.abs(np.log(centres) - math.log(max(target, 1e-300)))))
+
+
+def read_pair_stats(run_dir, eta: float, integral: float) -> list[PairStats]:
+    """Every /pairs/<a>__<b> group of RUN_DIR/pairs.h5 reduced to stationary means; the w_r
+    PDFs are taken in the bins nearest (in log r) to eta and to the integral scale, or in the
+    smallest and largest bin when those are the same bin."""
+    from eddybox.particles.pairs import bin_centres
+    from eddybox.solver.study.readers import list_pair_groups, read_pair_group
+
+    path = Path(run_dir) / "pairs.h5"
+    if not path.exists():
+        return []
+    out = []
+    for group in list_pair_groups(path):
+        series = read_pair_group(path, group)
+        with open_output(path) as f:
+            attrs = {k: (v.decode() if isinstance(v, bytes) else v)
+                     for k, v in f["pairs"][group].attrs.items()}
+        in_eta = attrs.get("r_units", "eta") == "eta"
+        scale = 1.0 if in_eta else 1.0 / eta
+        edges = np.asarray(series.r_edges, float) * scale
+        centres = bin_centres(edges)
+        rdf, kernel = pair_samples(series)
+        small = _nearest_log(centres, 1.0)
+        large = _nearest_log(centres, integral / eta)
+        if small == large:
+            small, large = 0, centres.size - 1
+        pdfs = []
+        for k in sorted({small, large}):
+            t, pdf, sigma, x_edges = pdf_samples(series, k)
+            pdfs.append(PdfEstimate(float(centres[k]), k, sigma, x_edges, stationary_bins(t, pdf)))
+        out.append(PairStats(group, edges, centres, series.n_samples,
+                             stationary_bins(series.time, rdf), stationary_bins(series.time, kernel),
+                             pdfs, attrs))
+    return out
+
+
+@dataclass
+class Run:
+    name: str
+    path: Path
+    config: dict
+    series: dict
+    estimates: dict
+    spectra: object
+    pairs: list
+
+
+def load_run(run_dir, name=None) -> Run:
+    series = read_fluid_series(run_dir)
+    path = Path(run_dir)
+    try:
+        config = yaml.safe_load((path / "config.yaml").read_text()) or {}
+    except (OSError, yaml.YAMLError):
+        config = {}
+    est = fluid_estimates(series)
+    eta, integral = est["eta"].mean, est["integral_scale"].mean
+    if not (math.isfinite(eta) and math.isfinite(integral)):
+        eta = float(series["eta"][-1]) if series["eta"].size else math.nan
+        integral = float(series["integral_scale"][-1]) if series["integral_scale"].size else math.nan
+    pairs = read_pair_stats(path, eta, integral) if math.isfinite(eta) else []
+    return Run(name or path.name, path, config, series, est, read_spectra(path), pairs)
+
+
+def _run_names(dirs):
+    names = [Path(d).resolve().name for d in dirs]
+    for i, n in enumerate(names):
+        if names.count(n) > 1:
+            p = Path(dirs[i]).resolve()
+            names[i] = f"{p.parent.name}/{p.name}"
+    seen = {}
+    for i, n in enumerate(names):
+        seen[n] = seen.get(n, 0) + 1
+        if seen[n] > 1:
+            names[i] = f"{n}#{seen[n]}"
+    return names
+
+
+# --- figures -------------------------------------------------------------------------------
+def _figure(width, height):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _log_axis(axis):
+    """Log axis labelled 1, 2, 5, 10, ... in plain numbers: short ranges (less than a decade,
+    as r/eta often is) otherwise get crowded minor labels like 2x10^-1 3x10^-1."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def plot_timeseries(runs, path):
+    panels = [("energy", "E  [L² T⁻²]"), ("dissipation", "ε  [L² T⁻³]"),
+              ("re_lambda", "Re$_\\lambda$")]
+    fig = _figure(11, 8.2)
+    axes = fig.subplots(len(panels), 1, sharex=True)
+    for ax, (key, label) in zip(axes, panels):
+        for i, run in enumerate(runs):
+            c = COLOURS[i % len(COLOURS)]
+            t, v = run.series["time"], run.series[key]
+            ok = np.isfinite(v)
+            ax.plot(t[ok], v[ok], color=c, lw=1.2, label=run.name)
+            e = run.estimates[key]
+            if math.isfinite(e.mean) and t.size:
+                t0, t1 = e.start_time, t[-1]
+                ax.axvline(t0, color=c, ls=":", lw=1)
+                ax.fill_between([t0, t1], e.mean - e.stderr, e.mean + e.stderr, color=c,
+                                alpha=0.25, lw=0)
+                ax.plot([t0, t1], [e.mean, e.mean], color=c, lw=2.5, alpha=0.6)
+        ax.set_ylabel(label)
+        ax.grid(alpha=0.3)
+    axes[0].legend(loc="lower left", bbox_to_anchor=(0.0, 1.02), fontsize=8, frameon=False,
+                   ncol=max(1, min(len(runs), 3 if max(len(r.name) for r in runs) < 40 else 2)))
+    axes[-1].set_xlabel("t  [T]")
+    fig.savefig(path)
+
+
+def plot_spectra(runs, path):
+    fig = _figure(8, 4.8)
+    ax = fig.subplots()
+    drawn = False
+    for i, run in enumerate(runs):
+        if run.spectra is None:
+            continue
+        eps, eta = run.estimates["dissipation"].mean, run.estimates["eta"].mean
+        start = max(run.estimates["energy"].start_time, run.estimates["dissipation"].start_time)
+        avg = mean_spectrum(run.spectra, start)
+        if avg is None or not (eps > 0 and math.isfinite(eta)):
+            continue
+        k, e, n = avg
+        sel = k > 0
+        comp = eps ** (-2.0 / 3.0) * k[sel] ** (5.0 / 3.0) * e[sel]
+        ax.plot(k[sel] * eta, comp, "-o", ms=3, color=COLOURS[i % len(COLOURS)],
+                label=f"{run.name} ({n} spectra)")
+        drawn = True
+    ax.axhline(KOLMOGOROV_C, color="k", ls="--", lw=1, label=f"C = {KOLMOGOROV_C} (Pope 2000)")
+    ax.set_xscale("log")
+    _log_axis(ax.xaxis)
+    ax.set_xlabel("k η")
+    ax.set_ylabel("ε$^{-2/3}$ k$^{5/3}$ E(k)")
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=8)
+    if drawn:
+        fig.savefig(path)
+    return drawn
+
+
+def plot_pairs(runs, group, path):
+    fig = _figure(13, 4.9)
+    ax_g, ax_p, ax_k = fig.subplots(1, 3)
+    for i, run in enumerate(runs):
+        ps = next((p for p in run.pairs if p.group == group), None)
+        if ps is None:
+            continue
+        c = COLOURS[i % len(COLOURS)]
+        ax_g.errorbar(ps.r_eta, ps.rdf.mean, yerr=ps.rdf.stderr, color=c, marker="o", ms=3,
+                      capsize=2, label=run.name)
+        ax_k.errorbar(ps.r_eta, ps.kernel.mean, yerr=ps.kernel.stderr, color=c, marker="o", ms=3,
+                      capsize=2, label=run.name)
+        for pdf, ls in zip(ps.pdfs, ("-", "--")):
+            x = 0.5 * (pdf.x_edges[1:] + pdf.x_edges[:-1])
+            y, dy = pdf.pdf.mean, pdf.pdf.stderr
+            ok = np.isfinite(y) & (y > 0)
+            ax_p.errorbar(x[ok], y[ok], yerr=np.minimum(dy[ok], 0.999 * y[ok]), color=c, ls=ls,
+                          lw=1, marker=".", capsize=1.5,
+                          label=f"{run.name}, r = {pdf.r_eta:.3g} η ({int(ok.sum())} w$_r$ bins)")
+    x = np.linspace(-6, 6, 241)
+    ax_p.plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k:", lw=1.2, label="unit Gaussian")
+    ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)", title="radial distribution function")
+    ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
+    ax_p.set(yscale="log", xlabel="w$_r$ / rms(w$_r$)", ylabel="PDF", title="radial relative velocity",
+             xlim=(-6, 6), ylim=(1e-4, 2))
+    ax_k.set(xscale="log", yscale="log", xlabel="r / η", ylabel="K(r)  [L³ T⁻¹]",
+             title="collision kernel 2πr²g⟨|w$_r$|⟩")
+    for ax in (ax_g, ax_p, ax_k):
+        ax.grid(alpha=0.3, which="both")
+    _log_axis(ax_g.xaxis)
+    _log_axis(ax_k.xaxis)
+    # one legend under all three panels, so no panel is squeezed to make room for it
+    handles, labels = ax_p.get_legend_handles_labels()
+    longest = max(len(lb) for lb in labels)
+    ncol = max(1, min(3, len(labels), int(1200 // (5 * longest + 60))))  # ~5 px per character
+    fig.legend(handles, labels, loc="outside lower center", ncol=ncol, fontsize=8, frameon=False)
+    fig.savefig(path)
+
+
+# --- tables and the page -------------------------------------------------------------------
+def _name(name: str) -> str:
+    """A run name for HTML, breakable after '__' and ',' (sweep folder names are long)."""
+    return html.escape(name).replace("__", "__<wbr>").replace(",", ",<wbr>")
+
+
+def _num(v, digits=4):
+    return "n/a" if v is None or not np.isfinite(v) else f"{v:.{digits}g}"
+
+
+def _cell(e) -> str:
+    if e is None or not np.isfinite(e.mean):
+        note = html.escape(getattr(e, "note", "") or "not available")
+        return f'<td class="na" title="{note}">n/a</td>'
+    mark = "" if e.converged else f'<sup class="nc" title="{html.escape(e.note)}">†</sup>'
+    return f"<td>{_num(e.mean)} ± {_num(e.stderr, 2)}{mark}</td>"
+
+
+def small_r(ps: PairStats):
+    """(r/eta, g Estimate, K Estimate) in the smallest separation bin."""
+    conv = ps.rdf.converged
+    return (float(ps.r_eta[0]),
+            Estimate(float(ps.rdf.mean[0]), float(ps.rdf.stderr[0]), ps.rdf.start_time, conv,
+                     ps.rdf.note),
+            Estimate(float(ps.kernel.mean[0]), float(ps.kernel.stderr[0]), ps.kernel.start_time,
+                     ps.kernel.converged, ps.kernel.note))
+
+
+def _groups(runs):
+    seen = []
+    for r in runs:
+        for p in r.pairs:
+            if p.group not in seen:
+                seen.append(p.group)
+    return seen
+
+
+def _pair_rows(runs):
+    """[(label, [Estimate or None per run], units)] for g and K in the smallest separation
+    bin of every set pair; runs whose smallest bin differs get rows of their own, so only
+    values at the same r are compared."""
+    rows = []
+    for g in _groups(runs):
+        per = [next((p for p in r.pairs if p.group == g), None) for r in runs]
+        r0s = [None if p is None else float(f"{small_r(p)[0]:.6g}") for p in per]
+        for r0 in dict.fromkeys(r for r in r0s if r is not None):
+            same = [p if r == r0 else None for p, r in zip(per, r0s)]
+            where = f"(r = {r0:.3g} η) [{html.escape(g)}]"
+            rows.append((f"g{where}", [small_r(p)[1] if p else None for p in same], "1"))
+            rows.append((f"K{where}", [small_r(p)[2] if p else None for p in same], "L³ T⁻¹"))
+    return rows
+
+
+def summary_table(runs) -> str:
+    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
+    rows = [f"<tr><th>quantity</th><th>units</th>{head}</tr>"]
+    for q in QUANTITIES.values():
+        cells = "".join(_cell(r.estimates[q.key]) for r in runs)
+        rows.append(f'<tr><td class="q" title="{html.escape(q.definition)}">{q.label}</td>'
+                    f"<td>{q.units}</td>{cells}</tr>")
+    for label, ests, units in _pair_rows(runs):
+        cells = "".join(_cell(e) if e is not None else '<td class="na">—</td>' for e in ests)
+        rows.append(f'<tr><td class="q">{label}</td><td>{units}</td>{cells}</tr>')
+    return "<table>" + "\n".join(rows) + "</table>"
+
+
+def differences_table(runs) -> str:
+    ref = runs[0]
+    head = "".join(f"<th>{_name(r.name)} − {_name(ref.name)}</th>" for r in runs[1:])
+    rows = [f"<tr><th>quantity</th>{head}</tr>"]
+    items = [(q.label, [r.estimates[q.key] for r in runs]) for q in QUANTITIES.values()]
+    items += [(label, ests) for label, ests, _ in _pair_rows(runs)]
+    for label, ests in items:
+        cells = []
+        for e in ests[1:]:
+            a = ests[0]
+            if a is None or e is None or not (np.isfinite(a.mean) and np.isfinite(e.mean)):
+                cells.append('<td class="na">n/a</td>')
+                continue
+            diff, err, sig = analysis.difference_significance(a, e)
+            rel = f" ({100 * diff / a.mean:+.1f} %)" if a.mean != 0 else ""
+            cls = ' class="sig"' if sig else ""
+            cells.append(f"<td{cls}>{_num(diff)} ± {_num(err, 2)}{rel}</td>")
+        rows.append(f'<tr><td class="q">{label}</td>{"".join(cells)}</tr>')
+    return "<table>" + "\n".join(rows) + "</table>"
+
+
+def _config_brief(cfg: dict) -> str:
+    if not cfg:
+        return "no config.yaml"
+    f = cfg.get("forcing", {})
+    fp = ", ".join(f"{k}={v}" for k, v in f.items() if k != "kind" and v is not None)
+    g = cfg.get("grid", {})
+    forcing = f"{f.get('kind', '?')}({fp})" if fp else f.get("kind", "?")
+    return (f"{g.get('points', '?')}³, ν={cfg.get('fluid', {}).get('viscosity', '?')}, forcing "
+            f"{forcing}, seed {cfg.get('seed', '?')}")
+
+
+def _bare(cfg):
+    return {k: v for k, v in cfg.items() if k not in ("derived", "output", "name")}
+
+
+def runs_table(runs) -> str:
+    rows = ["<tr><th>run</th><th>folder</th><th>settings</th><th>t</th><th>fluid samples</th>"
+            "<th>pair sets (samples)</th></tr>"]
+    for i, r in enumerate(runs):
+        t = r.series["time"]
+        span = f"{t[0]:.4g} – {t[-1]:.4g}" if t.size else "no samples"
+        sets = ", ".join(f"{html.escape(p.group)} ({p.n_samples})" for p in r.pairs) or "—"
+        rows.append(f'<tr><td class="t"><span class="sw" style="background:{COLOURS[i % len(COLOURS)]}">'
+                    f"</span>{_name(r.name)}</td>"
+                    f"<td class=\"t path\"><code>{html.escape(str(r.path))}</code></td>"
+                    f"<td class=\"t\">{html.escape(_config_brief(r.config))}</td><td>{span}</td>"
+                    f"<td>{t.size}</td><td class=\"t\">{sets}</td></tr>")
+    table = "<table>" + "\n".join(rows) + "</table>"
+    flat = [_flat_settings(_bare(r.config)) for r in runs]
+    keys = sorted({k for fl in flat[1:] for k in set(fl) | set(flat[0]) if fl.get(k) != flat[0].get(k)
+                   and any(f.get(k, "null") != "null" for f in flat)})  # not just unset vs null
+    if not keys:
+        return table
+    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
+    diff = [f"<tr><th>setting</th>{head}</tr>"] + [
+        f"<tr><td><code>{html.escape(k)}</code></td>"
+        + "".join(f"<td>{html.escape(fl.get(k, '—'))}</td>" for fl in flat) + "</tr>"
+        for k in keys]
+    return table + "<h3>Settings that differ between runs</h3><table>" + "\n".join(diff) + "</table>"
+
+
+def _flat_settings(d, prefix="") -> dict:
+    """Dotted key -> YAML text of the value; lists of mappings (particle sets) by index, as
+    --set and --vary address them (particles.sets.0.stokes)."""
+    out = {}
+    items = enumerate(d) if isinstance(d, list) else d.items()
+    for k, v in items:
+        key = f"{prefix}.{k}" if prefix else str(k)
+        if isinstance(v, dict) or (isinstance(v, list) and v and all(isinstance(x, dict) for x in v)):
+            out.update(_flat_settings(v, key))
+        else:
+            out[key] = yaml.safe_dump(v, default_flow_style=True, width=1000).strip()
+            out[key] = out[key][:-4] if out[key].endswith("\n...") else out[key]
+    return out
+
+
+CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',Helvetica,Arial,sans-serif;margin:24px auto;
+max-width:1320px;padding:0 16px;color:#1d1d1f;line-height:1.4}
+h1{font-size:1.6em;margin-bottom:0.2em} h2{margin-top:1.6em;border-bottom:1px solid #ddd;
+padding-bottom:4px} h3{font-size:1.05em;margin-top:1.2em}
+table{border-collapse:collapse;margin:8px 0 12px;font-size:13px}
+th,td{border:1px solid #d0d0d0;padding:3px 8px;text-align:right;vertical-align:top;white-space:nowrap}
+th{background:#f2f2f2;text-align:center;white-space:normal;max-width:340px}
+td.path{word-break:break-all;min-width:160px} td.t{min-width:180px} td.q,td.t,td:first-child{text-align:left}
+td.t{white-space:normal} td.na{color:#999}
+td.sig{background:#ffe0dc;color:#a40000;font-weight:bold}
+sup.nc{color:#b35c00;cursor:help} code{font-size:12px}
+.note{background:#f6f8fa;border-left:4px solid #7a9cc6;padding:8px 12px;font-size:13px}
+.legend{font-size:12px;color:#444} img{max-width:100%;height:auto;border:1px solid #eee}
+.sw{display:inline-block;width:10px;height:10px;margin-right:6px;border-radius:2px}
+.scroll{overflow-x:auto}
+"""
+
+
+def _definitions() -> str:
+    rows = ["<tr><th>quantity</th><th>units</th><th>definition</th></tr>"] + [
+        f'<tr><td class="q">{q.label}</td><td>{q.units}</td>'
+        f'<td class="t">{html.escape(q.definition)}</td></tr>'
+        for q in QUANTITIES.values()]
+    return "<table>" + "\n".join(rows) + "</table>"
+
+
+METHODS_NOTE = (
+    "These are research estimates from short runs, not validated reference values. Each value "
+    "is the mean over the stationary part of a series with its standard error: the initial "
+    "transient is cut by MSER-5 (White 1997, <i>Simulation</i> 69:323; White, Cobb &amp; Spratt "
+    "2000, Proc. Winter Simulation Conf.), and the error bar of the correlated remainder comes "
+    "from Flyvbjerg–Petersen blocking (Flyvbjerg &amp; Petersen 1989, <i>J. Chem. Phys.</i> "
+    "91:461), with the plateau level chosen automatically. Pair statistics are treated per "
+    "bin the same way over their samples. <sup class=\"nc\">†</sup> marks estimates whose "
+    "transient or blocking plateau could not be established (series too short): their error "
+    "bars are likely too small. Differences are flagged when they exceed twice the combined "
+    "standard error, which assumes independent runs (different seeds).")
+
+
+def write_csv(runs, path):
+    """One row per run: run, folder, then each quantity and its stderr (full precision)."""
+    header = ["run", "folder"]
+    for q in QUANTITIES:
+        header += [q, f"{q}_stderr"]
+    groups = _groups(runs)
+    for g in groups:
+        header += [f"{g}/r_small_eta", f"{g}/g_small", f"{g}/g_small_stderr",
+                   f"{g}/kernel_small", f"{g}/kernel_small_stderr"]
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(header)
+        for r in runs:
+            row = [r.name, str(r.path)]
+            for q in QUANTITIES:
+                e = r.estimates[q]
+                row += [repr(float(e.mean)), repr(float(e.stderr))]
+            for g in groups:
+                ps = next((p for p in r.pairs if p.group == g), None)
+                if ps is None:
+                    row += [""] * 5
+                else:
+                    r0, ge, ke = small_r(ps)
+                    row += [repr(r0), repr(ge.mean), repr(ge.stderr), repr(ke.mean), repr(ke.stderr)]
+            w.writerow(row)
+
+
+def write_report(run_dirs, out_dir) -> Path:
+    """Write index.html, its PNG figures and summary.csv for `run_dirs` into `out_dir`;
+    returns the path of index.html. ConfigError for a folder that is not an eddybox run."""
+    if not run_dirs:
+        raise ConfigError("report: give at least one run folder")
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        raise ImportError("eddybox report needs matplotlib (install the 'plot' extra)") from None
+    for d in run_dirs:
+        check_run_dir(d)
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise ConfigError(f"--out {out}: exists and is not a folder")
+    runs = [load_run(d, n) for d, n in zip(run_dirs, _run_names(run_dirs))]
+    out.mkdir(parents=True, exist_ok=True)
+
+    plot_timeseries(runs, out / "timeseries.png")
+    has_spectra = plot_spectra(runs, out / "spectra.png")
+    pair_figs = []
+    for g in _groups(runs):
+        name = f"pairs_{g}.png"
+        plot_pairs(runs, g, out / name)
+        pair_figs.append((g, name))
+    write_csv(runs, out / "summary.csv")
+
+    created = datetime.datetime.now().strftime("%Y-%m-%d %H:%M")
+    parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
+             f"<title>eddybox report: {html.escape(', '.join(r.name for r in runs))}</title>"
+             f"<style>{CSS}</style></head><body>",
+             f"<h1>eddybox report — {len(runs)} run{'s' if len(runs) > 1 else ''}</h1>",
+             f'<p class="legend">written {created} by eddybox {__version__}; table as '
+             f'<a href="summary.csv">summary.csv</a></p>',
+             f'<p class="note">{METHODS_NOTE}</p>',
+             "<h2>Runs</h2>", f'<div class="scroll">{runs_table(runs)}</div>',
+             "<h2>Stationary means</h2>",
+             '<p class="legend">mean ± standard error over the stationary window; hover a '
+             "quantity for its definition, a † for the reason it is flagged.</p>",
+             f'<div class="scroll">{summary_table(runs)}</div>']
+    if len(runs) > 1:
+        parts += [f"<h2>Differences from {_name(runs[0].name)}</h2>",
+                  '<p class="legend">difference ± combined standard error √(σ<sub>a</sub>² + '
+                  'σ<sub>b</sub>²) (relative difference in brackets). <span class="sig" '
+                  'style="background:#ffe0dc;color:#a40000;font-weight:bold;padding:0 4px">'
+                  "Bold red</span>: |difference| &gt; 2 × combined standard error.</p>",
+                  f'<div class="scroll">{differences_table(runs)}</div>']
+    parts += ["<h2>Time series</h2>",
+              '<p class="legend">Dotted vertical line: start of the stationary window (MSER-5) of '
+              "each run and series; thick line and band: its mean ± standard error.</p>",
+              '<img src="timeseries.png" alt="time series of E, eps and Re_lambda">',
+              "<h2>Compensated energy spectra</h2>"]
+    if has_spectra:
+        parts += ['<p class="legend">ε<sup>−2/3</sup> k<sup>5/3</sup> E(k) against kη, averaged '
+                  "over the spectra in the stationary window of E and ε (the later of the two); "
+                  "ε and η are the stationary means. Dashed: the Kolmogorov constant C ≈ 1.5 "
+                  "(Pope 2000, Turbulent Flows, §6.5).</p>",
+                  '<img src="spectra.png" alt="compensated energy spectra">']
+    else:
+        parts.append("<p>No spectra recorded (stats.spectra.every is null, or no dissipation).</p>")
+    parts.append("<h2>Particle pair statistics</h2>")
+    if pair_figs:
+        parts.append('<p class="legend">Per set pair: g(r) = counts / expected counts for '
+                     "uniformly distributed particles; PDFs of the radial relative velocity "
+                     "w<sub>r</sub> normalised by its r.m.s. in the bin nearest to η (solid) and "
+                     "to the integral scale L (dashed), with a unit Gaussian (dotted); collision "
+                     "kernel K(r) = 2πr²g(r)⟨|w<sub>r</sub>|⟩ (Wang, Wexler &amp; Zhou 2000, JFM "
+                     "415:117). Error bars: per-bin standard errors over the samples (MSER-5 + "
+                     "blocking). The w<sub>r</sub> bins are sized once, from the particle "
+                     "velocity r.m.s. at the first sample, so near r = η only a few of them hold "
+                     "pairs; the legend gives how many.</p>")
+        for g, name in pair_figs:
+            parts += [f"<h3>{html.escape(g.replace('__', ' × '))}</h3>",
+                      f'<img src="{html.escape(name)}" alt="pair statistics of {html.escape(g)}">']
+    else:
+        parts.append("<p>No pair statistics recorded (no particles, or stats.pairs.every is null).</p>")
+    parts += ["<h2>Definitions</h2>", _definitions(), "</body></html>"]
+    index = out / "index.html"
+    index.write_text("\n".join(parts), encoding="utf-8")
+    return index
