@@ -30,10 +30,15 @@ def register(name: str):
 
 class Forcing:
     kind = "base"
-    #: config keys this scheme accepts: name -> (default, description); validated by eddybox.solver.run.config
+    #: config keys this scheme accepts: name -> eddybox.solver.fields.Field (default, type,
+    #: range, units, description); the config section `forcing` is built from them
     params: dict = {}
 
-    def __init__(self, cfg: dict, layout, seed: int):
+    @staticmethod
+    def check_config(section) -> None:
+        """Rules across this scheme's keys (raise ConfigError naming the key)."""
+
+    def __init__(self, cfg, layout, seed: int):
         self.cfg = cfg
         self.layout = layout
         self.seed = seed
@@ -61,8 +66,7 @@ class Forcing:
         self.linear_rate = float(st["linear_rate"])
 
     def summary(self) -> str:
-        args = ", ".join(f"{k}={v}" for k, v in self.cfg.items() if k != "kind")
-        return f"forcing {self.kind}({args})"
+        return f"forcing {self.cfg.summary()}"
 
 
 @register("none")
@@ -70,5 +74,6 @@ class NoForcing(Forcing):
     """Freely decaying turbulence: f = 0."""
 
 
-def make_forcing(cfg: dict, layout, seed: int) -> Forcing:
-    return FORCINGS[cfg["kind"]](cfg, layout, seed)
+def make_forcing(cfg, layout, seed: int) -> Forcing:
+    """The forcing of config section `cfg` (its `kind` picks the scheme)."""
+    return FORCINGS[cfg.kind](cfg, layout, seed)

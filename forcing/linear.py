@@ -2,6 +2,8 @@
 from __future__ import annotations
 
 from eddybox.forcing.base import Forcing, register
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fields import Num
 
 
 @register("linear")
@@ -19,18 +21,26 @@ class LinearForcing(Forcing):
     """
 
     params = {
-        "coefficient": (None, "A in f = A u (instead of dissipation)"),
-        "dissipation": (None, "target dissipation eps*; A = eps*/(2E) each step"),
+        "coefficient": Num(None, "A in f = A u (instead of dissipation)", "T^-1", lo=0.0,
+                           lo_open=True, hi=1e6),
+        "dissipation": Num(None, "target dissipation ε*; A = ε*/(2E) each step", "L^2 T^-3",
+                           lo=0.0, lo_open=True),
     }
 
+    @staticmethod
+    def check_config(f):
+        if (f.coefficient is None) == (f.dissipation is None):
+            raise ConfigError("forcing: kind 'linear' needs exactly one of forcing.coefficient or "
+                              "forcing.dissipation")
+
     def target_dissipation(self):
-        return None if self.cfg.get("dissipation") is None else float(self.cfg["dissipation"])
+        return None if self.cfg.dissipation is None else float(self.cfg.dissipation)
 
     def begin_step(self, sim, dt):
-        if self.cfg.get("coefficient") is not None:
-            self.linear_rate = float(self.cfg["coefficient"])
+        if self.cfg.coefficient is not None:
+            self.linear_rate = float(self.cfg.coefficient)
         else:
-            eps = 0.1 if self.cfg.get("dissipation") is None else float(self.cfg["dissipation"])
+            eps = float(self.cfg.dissipation)
             e = sim.energy()
             self.linear_rate = eps / (2.0 * e) if e > 0 else 0.0
         self._p0 = 2.0 * self.linear_rate * sim.energy()

@@ -5,6 +5,8 @@ import numpy as np
 
 from eddybox.forcing.band import ForcedBand
 from eddybox.forcing.base import Forcing, register
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fields import Num
 from eddybox.solver.run.checkpoint import restore_rng_state, rng_state_array
 
 
@@ -34,20 +36,27 @@ class OrnsteinUhlenbeckForcing(Forcing):
     """
 
     params = {
-        "band": (2.0 * np.sqrt(2.0), "forced modes 0 < |k| <= band, in units of 2 pi / L"),
-        "timescale": (1.0, "OU time scale T_F"),
-        "dissipation": (None, "target dissipation eps*; sets sigma^2 = eps*/(4 N_F T_F)"),
-        "variance": (None, "sigma^2 of each real and imaginary part (instead of dissipation)"),
+        "band": Num(2.0 * np.sqrt(2.0), "forced modes 0 < |k| <= band", "2π/L", lo=0.0, lo_open=True),
+        "timescale": Num(1.0, "OU time scale T_F", "T", lo=0.0, lo_open=True),
+        "dissipation": Num(None, "target dissipation ε*; sets σ² = ε*/(4 N_F T_F) (default 0.1)",
+                           "L^2 T^-3", lo=0.0, lo_open=True),
+        "variance": Num(None, "σ² of each real and imaginary part (instead of dissipation)",
+                        "L^2 T^-4", lo=0.0, lo_open=True),
     }
+
+    @staticmethod
+    def check_config(f):
+        if f.variance is not None and f.dissipation is not None:
+            raise ConfigError("forcing: give either forcing.variance or forcing.dissipation, not both")
 
     def __init__(self, cfg, layout, seed):
         super().__init__(cfg, layout, seed)
-        self.band = ForcedBand(layout, float(cfg["band"]))
-        self.T = float(cfg["timescale"])
-        if cfg.get("variance") is not None:
-            self.sigma2 = float(cfg["variance"])
+        self.band = ForcedBand(layout, float(cfg.band))
+        self.T = float(cfg.timescale)
+        if cfg.variance is not None:
+            self.sigma2 = float(cfg.variance)
         else:
-            eps = 0.1 if cfg.get("dissipation") is None else float(cfg["dissipation"])
+            eps = 0.1 if cfg.dissipation is None else float(cfg.dissipation)
             self.sigma2 = eps / (4.0 * self.band.n_full * self.T)
         self.rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, 0x0F0C])))
         n = self.band.n_independent

@@ -5,6 +5,8 @@ import numpy as np
 
 from eddybox.forcing.band import ForcedBand
 from eddybox.forcing.base import Forcing, register
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fields import Choice, Num
 
 
 @register("reinject")
@@ -22,19 +24,26 @@ class ReinjectionForcing(Forcing):
     """
 
     params = {
-        "band": (2.0, "forced modes 0 < |k| <= band, in units of 2 pi / L"),
-        "mode": ("energy", "energy: hold the total energy; power: inject `dissipation` per unit time"),
-        "dissipation": (None, "injected power eps* in mode `power`"),
-        "energy": (None, "energy held in mode `energy` (default: the initial energy)"),
+        "band": Num(2.0, "forced modes 0 < |k| <= band", "2π/L", lo=0.0, lo_open=True),
+        "mode": Choice("energy", ("energy", "power"), "energy: hold the total energy; power: "
+                       "inject `dissipation` per unit time"),
+        "dissipation": Num(None, "injected power ε* in mode `power`", "L^2 T^-3", lo=0.0,
+                           lo_open=True),
+        "energy": Num(None, "energy held in mode `energy` (default: the initial energy)",
+                      "L^2 T^-2", lo=0.0, lo_open=True),
     }
-    choices = {"mode": ("energy", "power")}
+
+    @staticmethod
+    def check_config(f):
+        if f.mode == "power" and f.dissipation is None:
+            raise ConfigError("forcing.dissipation: required with forcing.mode: power")
 
     def __init__(self, cfg, layout, seed):
         super().__init__(cfg, layout, seed)
-        self.band = ForcedBand(layout, float(cfg["band"]))
-        self.mode = cfg["mode"]
-        self.eps = None if cfg.get("dissipation") is None else float(cfg["dissipation"])
-        self.e_target = None if cfg.get("energy") is None else float(cfg["energy"])
+        self.band = ForcedBand(layout, float(cfg.band))
+        self.mode = cfg.mode
+        self.eps = None if cfg.dissipation is None else float(cfg.dissipation)
+        self.e_target = None if cfg.energy is None else float(cfg.energy)
 
     def target_dissipation(self):
         return self.eps if self.mode == "power" else None

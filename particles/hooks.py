@@ -94,13 +94,12 @@ class ParticleHook(_LazyFileHook):
 
     name = "particles"
 
-    def __init__(self, cfg_stats: dict, path: str, cfg: dict):
-        series_every = cfg_stats["series_every"]
-        if series_every is None:
-            series_every = cfg["stats"]["fluid"]["every"]
+    def __init__(self, cfg, path: str, series_every):
+        """`cfg`: the section stats.particles; `series_every`: its series cadence resolved
+        (default the fluid series cadence)."""
         super().__init__(series_every, path)
-        self.snap = Schedule(cfg_stats["every"])
-        self.max_count = cfg_stats["max_count"]
+        self.snap = Schedule(cfg.every)
+        self.max_count = cfg.max_count
 
     def due(self, t, step):
         return self.schedule.due(t, step) or self.snap.due(t, step)
@@ -190,29 +189,31 @@ class PairHook(_LazyFileHook):
 
     name = "pairs"
 
-    def __init__(self, cfg_pairs: dict, path: str, cfg: dict):
-        super().__init__(cfg_pairs["every"], path)
-        self.c = cfg_pairs
-        self.length = cfg["grid"]["length"]
-        names = [s["name"] for s in cfg["particles"]["sets"]]
+    def __init__(self, cfg, path: str, set_names, length: float, seed: int):
+        """`cfg`: the section stats.pairs; the names of the particle sets, the box side and the
+        run's seed (for the subsample draws)."""
+        super().__init__(cfg.every, path)
+        self.c = cfg
+        self.length = length
+        names = list(set_names)
         self.groups = [(a, a) for a in names]
-        if cfg_pairs["cross"]:
+        if cfg.cross:
             self.groups += [(a, b) for i, a in enumerate(names) for b in names[i + 1:]]
-        r_max = cfg_pairs["r_max"]
-        r_min = cfg_pairs["r_min"] or r_max / 100.0
-        nb = cfg_pairs["bins"]
-        self.edges_units = (np.geomspace(r_min, r_max, nb + 1) if cfg_pairs["spacing"] == "log"
+        r_max = cfg.r_max
+        r_min = cfg.r_min or r_max / 100.0
+        nb = cfg.bins
+        self.edges_units = (np.geomspace(r_min, r_max, nb + 1) if cfg.spacing == "log"
                             else np.linspace(0.0, r_max, nb + 1))
         self.k_sub = None
-        if cfg_pairs["subsample_above"] is not None:
+        if cfg.subsample_above is not None:
             # snap once, in the configured units, so the subsampled bins never change
             import warnings
 
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                self.k_sub, _ = pairs_kernel.snap_to_edge(self.edges_units, cfg_pairs["subsample_above"])
+                self.k_sub, _ = pairs_kernel.snap_to_edge(self.edges_units, cfg.subsample_above)
         self.wr_edges = None
-        self.rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([cfg["seed"], 0x5A11])))
+        self.rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, 0x5A11])))
         self.running = {}
         self.n_running = 0
 
@@ -225,7 +226,7 @@ class PairHook(_LazyFileHook):
             return
         eps = sim.spectral_stats()["dissipation"]  # collective
         eta = (sim.nu**3 / eps) ** 0.25 if eps > 0 else float("inf")
-        unit = eta if self.c["units"] == "eta" else 1.0
+        unit = eta if self.c.units == "eta" else 1.0
         r_edges = self.edges_units * unit
         if r_edges[-1] >= 0.5 * self.length:
             sim.log.write(f"pair statistics skipped at t={sim.t:.6g}: r_max = "
@@ -238,14 +239,14 @@ class PairHook(_LazyFileHook):
             v = np.concatenate([s.v for s in ps.sets])
             tot = sim.layout.sum(np.array([float(np.sum(v * v)), 3.0 * v.shape[0]]))
             rms = float(np.sqrt(tot[0] / tot[1])) if tot[1] > 0 else 1.0
-            self.wr_edges = pairs_kernel.wr_edges_from_rms(rms, self.c["wr_bins"])
+            self.wr_edges = pairs_kernel.wr_edges_from_rms(rms, self.c.wr_bins)
         self._ensure_file(sim)
         r_sub = None if self.k_sub is None else r_edges[self.k_sub]
         subsets = {}
         if r_sub is not None:
             # the subset is drawn by global id, so every layout picks the same particles
             for s in ps.sets:
-                m = min(self.c["subsample_count"], s.count)
+                m = min(self.c.subsample_count, s.count)
                 subsets[s.name] = s.first_id + np.sort(self.rng.choice(s.count, size=m, replace=False))
         centres = pairs_kernel.bin_centres(r_edges)
         rec = {}
@@ -302,7 +303,7 @@ class PairHook(_LazyFileHook):
                 cols.append(Column(f"{g}/{k}", u, d, dtype=dt, tail=tail, dims=[f"{g}/time"]))
             cols.append(Column(f"{g}/subsampled", "1", "1 where the bin used the particle subsample",
                                dtype=np.int8, tail=(nb,), dims=[f"{g}/time"]))
-            units = "eta (Kolmogorov lengths at each sample)" if self.c["units"] == "eta" else "L"
+            units = "eta (Kolmogorov lengths at each sample)" if self.c.units == "eta" else "L"
             fixed.append(Fixed(f"{g}/r_edges", self.edges_units, units, "separation bin edges"))
             fixed.append(Fixed(f"{g}/wr_edges", self.wr_edges, "L T^-1",
                                "w_r bin edges, from the particle velocity rms at the first sample"))
@@ -317,7 +318,7 @@ class PairHook(_LazyFileHook):
             st = {s.name: s for s in sim.particles.sets}
             gattrs[g] = {"set_a": a, "set_b": b, "n_a": st[a].count, "n_b": st[b].count,
                          "stokes_a": float(st[a].stokes), "stokes_b": float(st[b].stokes),
-                         "r_units": self.c["units"], "spacing": self.c["spacing"],
+                         "r_units": self.c.units, "spacing": self.c.spacing,
                          "subsample_above": float(self.edges_units[self.k_sub]) if self.k_sub is not None else 0.0}
         return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
                           group_attrs=gattrs, sample_scales=scales)

@@ -148,19 +148,17 @@ def ghost_block_bytes(n: int, proc_grid, components: int, width: int) -> np.ndar
     return 8 * components * n * points
 
 
-def ghost_field_bytes(cfg, ranks, layout) -> int:
+def ghost_field_bytes(n, max_order, ranks, layout, grid=None) -> int:
     """Bytes of the ghosted 3-component velocity block per rank (largest over the ranks),
     including its exchange buffers: what `GhostField(layout, blockmap, 3,
-    ghost_width(max order))` allocates. `layout` is 'slab' or 'pencil' (the grid from
-    parallel.grid when it fits, else the automatic one)."""
+    ghost_width(max_order))` allocates on an n^3 grid. `layout` is 'slab' or 'pencil' (the
+    process grid `grid` when it fits, else the automatic one); 0 without particles
+    (max_order None) or on one rank."""
     from eddybox.solver.errors import ConfigError
     from eddybox.solver.fluid.mpi_layout import resolve_grid
 
-    n = cfg["grid"]["points"]
-    orders = [s["interpolation"] or cfg["particles"]["interpolation"] for s in cfg["particles"]["sets"]]
-    if not orders or ranks <= 1:
+    if max_order is None or ranks <= 1:
         return 0
-    grid = (cfg.get("parallel") or {}).get("grid")
     if layout != "pencil" or grid is None or math.prod(grid) != ranks:
         grid = None
     try:
@@ -171,7 +169,7 @@ def ghost_field_bytes(cfg, ranks, layout) -> int:
             p1 -= 1
         pg = (ranks, 1) if layout == "slab" else (p1, ranks // p1)
         pg = tuple(min(g, n) for g in pg)  # no empty blocks in the geometry
-    return int(ghost_block_bytes(n, pg, 3, ghost_width(max(orders))).max())
+    return int(ghost_block_bytes(n, pg, 3, ghost_width(max_order)).max())
 
 
 # ---------------------------------------------------------------------------------------------

@@ -22,7 +22,8 @@ import math
 
 
 def physical_numbers(radius, density, phys) -> dict:
-    nu, eps, rho_f, g = phys["viscosity"], phys["dissipation"], phys["fluid_density"], phys["gravity"]
+    """The numbers above for one particle; `phys` is the particles.physical section."""
+    nu, eps, rho_f, g = phys.viscosity, phys.dissipation, phys.fluid_density, phys.gravity
     d = 2.0 * radius
     tau_p = density * d * d / (18.0 * rho_f * nu)
     eta = (nu**3 / eps) ** 0.25
@@ -50,32 +51,32 @@ def point_particle_warnings(name, num) -> list[str]:
     return w
 
 
-def particle_lines(cfg, predicted) -> tuple[list[str], list[str]]:
-    """Lines for `eddybox check` describing every particle set, and warnings."""
-    p = cfg.data["particles"]
-    if not p["sets"]:
+def particle_lines(p, predicted) -> tuple[list[str], list[str]]:
+    """Lines for `eddybox check` describing every particle set of the particles section `p`,
+    and warnings."""
+    if not p.sets:
         return [], []
-    lines = ["", f"particles (released at t = {p['release']:g}):"]
+    lines = ["", f"particles (released at t = {p.release:g}):"]
     warn = []
     tau_eta = predicted.get("tau_eta")
-    for s in p["sets"]:
-        order = s["interpolation"] or p["interpolation"]
-        if s["radius"] is not None:
-            num = physical_numbers(s["radius"], s["density"], p["physical"])
+    for s in p.sets:
+        order = s.interpolation or p.interpolation
+        if s.radius is not None:
+            num = physical_numbers(s.radius, s.density, p.physical)
             lines.append(
-                f"  {s['name']:12s} {s['count']:9d}  radius {s['radius']:.3g} m, density "
-                f"{s['density']:.4g} kg/m^3 -> tau_p = rho_p d^2/(18 mu) = {num['tau_p']:.3g} s, "
+                f"  {s.name:12s} {s.count:9d}  radius {s.radius:.3g} m, density "
+                f"{s.density:.4g} kg/m^3 -> tau_p = rho_p d^2/(18 mu) = {num['tau_p']:.3g} s, "
                 f"St = tau_p/tau_eta = {num['stokes']:.3g}, S_v = tau_p g/u_eta = "
                 f"{num['settling_parameter']:.3g}, Fr = a_eta/g = {num['froude']:.3g}, "
                 f"Re_p = d v_s/nu = {num['reynolds_p']:.3g}, d/eta = {num['diameter_over_eta']:.3g}")
-            warn += point_particle_warnings(s["name"], num)
-        elif s["stokes"] is not None:
-            tp = f", tau_p ~ {s['stokes'] * tau_eta:.3g} with the predicted tau_eta" if tau_eta else ""
-            kind = "tracers" if s["stokes"] == 0 else f"St = {s['stokes']:g}{tp}"
-            lines.append(f"  {s['name']:12s} {s['count']:9d}  {kind} (tau_eta measured at release)")
+            warn += point_particle_warnings(s.name, num)
+        elif s.stokes is not None:
+            tp = f", tau_p ~ {s.stokes * tau_eta:.3g} with the predicted tau_eta" if tau_eta else ""
+            kind = "tracers" if s.stokes == 0 else f"St = {s.stokes:g}{tp}"
+            lines.append(f"  {s.name:12s} {s.count:9d}  {kind} (tau_eta measured at release)")
         else:
-            kind = "tracers" if s["tau_p"] == 0 else f"tau_p = {s['tau_p']:g}"
-            st = f", St ~ {s['tau_p'] / tau_eta:.3g}" if tau_eta and s["tau_p"] else ""
-            lines.append(f"  {s['name']:12s} {s['count']:9d}  {kind}{st}")
+            kind = "tracers" if s.tau_p == 0 else f"tau_p = {s.tau_p:g}"
+            st = f", St ~ {s.tau_p / tau_eta:.3g}" if tau_eta and s.tau_p else ""
+            lines.append(f"  {s.name:12s} {s.count:9d}  {kind}{st}")
         lines[-1] += f", interpolation {order} points"
     return lines, warn

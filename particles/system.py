@@ -26,31 +26,22 @@ def bytes_per_particle() -> int:
     return _ARRAYS_PER_PARTICLE * 3 * 8 + 8
 
 
-def ghost_field_bytes(cfg, ranks, layout) -> int:
-    return 0 if ranks == 1 else _ghost_bytes(cfg, ranks, layout)
-
-
-def _ghost_bytes(cfg, ranks, layout):  # filled in by the distributed particle layer
-    from eddybox.particles.migration import ghost_field_bytes as gfb
-
-    return gfb(cfg, ranks, layout)
-
-
 class ParticleSet:
     """One set: name, response time, gravity, interpolation order and the particle arrays."""
 
-    def __init__(self, spec: dict, index: int, defaults: dict, physical):
-        self.name = spec["name"]
+    def __init__(self, spec, index: int, order: int, gravity, physical):
+        """`spec`: the set's own config section; `order` and `gravity` its resolved
+        interpolation order and gravity vector; `physical` the particles.physical section."""
+        self.name = spec.name
         self.index = index
-        self.count = spec["count"]
-        self.order = spec["interpolation"] or defaults["interpolation"]
-        g = spec["gravity"] if spec["gravity"] is not None else defaults["gravity"]
-        self.gravity = np.asarray(g, float)
-        self.stokes = spec["stokes"]
-        self.tau_p = spec["tau_p"]
+        self.count = spec.count
+        self.order = order
+        self.gravity = np.asarray(gravity, float)
+        self.stokes = spec.stokes
+        self.tau_p = spec.tau_p
         self.physical = None
-        if spec["radius"] is not None:
-            self.physical = physical_numbers(spec["radius"], spec["density"], physical)
+        if spec.radius is not None:
+            self.physical = physical_numbers(spec.radius, spec.density, physical)
             self.stokes = self.physical["stokes"]
         self.released = False
         self.ids = np.empty(0, np.int64)
@@ -82,15 +73,17 @@ class ParticleSet:
 
 
 class ParticleSystem:
-    def __init__(self, cfg: dict, layout):
-        p = cfg["particles"]
+    def __init__(self, cfg, grid, seed: int, layout):
+        """`cfg`: the section particles; `grid`: the section grid; `seed`: the run's seed."""
         self.layout = layout
-        self.release = p["release"]
-        self.rng_seed = cfg["seed"]
-        self.length = cfg["grid"]["length"]
-        self.n = cfg["grid"]["points"]
+        self.release = cfg.release
+        self.rng_seed = seed
+        self.length = grid.length
+        self.n = grid.points
         self.h = self.length / self.n
-        self.sets = [ParticleSet(s, i, p, p["physical"]) for i, s in enumerate(p["sets"])]
+        self.sets = [ParticleSet(s, i, s.interpolation or cfg.interpolation,
+                                 s.gravity if s.gravity is not None else cfg.gravity, cfg.physical)
+                     for i, s in enumerate(cfg.sets)]
         first = 0
         for st in self.sets:
             st.first_id = first

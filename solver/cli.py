@@ -55,6 +55,10 @@ def _parser():
     i.add_argument("--repair", action="store_true",
                    help="first make files left by a killed run readable by plain HDF5 readers")
 
+    s = sub.add_parser("schema", help="print the JSON Schema of the config (for editors), or the "
+                       "README's config reference with --markdown")
+    s.add_argument("--markdown", action="store_true", help="the config reference as a Markdown table")
+
     b = sub.add_parser("bench", help="measure performance ratios on this machine")
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
     b.add_argument("--json", help="also write the figures to this JSON file")
@@ -162,6 +166,13 @@ def cmd_inspect(args, comm=None):
     return EXIT_DONE
 
 
+def cmd_schema(args, comm=None):
+    from eddybox.solver.run.config_docs import json_schema_text, reference_table
+
+    print(reference_table() if args.markdown else json_schema_text())
+    return EXIT_DONE
+
+
 def cmd_bench(args, comm=None):
     from eddybox.solver.study.bench import run_bench
 
@@ -189,7 +200,8 @@ def cmd_estimate(args, comm=None):
 
 
 COMMANDS = {"run": cmd_run, "check": cmd_check, "demo": cmd_demo, "inspect": cmd_inspect,
-            "bench": cmd_bench, "sweep": cmd_sweep, "report": cmd_report, "estimate": cmd_estimate}
+            "schema": cmd_schema, "bench": cmd_bench, "sweep": cmd_sweep, "report": cmd_report,
+            "estimate": cmd_estimate}
 
 
 def _fail(comm, code, msg):

@@ -76,6 +76,18 @@ BAD_CONFIGS = [
      "stats.pairs.r_max"),
     ({"particles": PARTICLES, "stats": {"pairs": {"every": 0.1, "wr_bins": 100}}}, "stats.pairs.wr_bins"),
     ({"particles": PARTICLES, "stats": {"pairs": {"every": 0.1, "spacing": "cubic"}}}, "stats.pairs.spacing"),
+    # every physical input is bounded to a finite, meaningful range
+    ({"grid": {"length": 1e300}}, "grid.length"),
+    ({"grid": {"length": 1e-300}}, "grid.length"),
+    ({"grid": {"points": 10**6}}, "grid.points"),
+    ({"fluid": {"viscosity": float("nan")}}, "fluid.viscosity"),
+    ({"time": {"end": float("inf")}}, "time.end"),
+    ({"time": {"walltime": float("nan")}}, "time.walltime"),
+    ({"time": {"max_steps": 10**23}}, "time.max_steps"),
+    ({"seed": 10**30}, "seed"),
+    ({"particles": {"sets": [{"name": "a", "stokes": 1.0, "count": 10**23}]}}, "count"),
+    ({"particles": {"gravity": [0, 0, float("-inf")], "sets": PARTICLES["sets"]}}, "particles.gravity"),
+    ({"name": "x" * 300}, "name"),
 ]
 
 
@@ -131,6 +143,15 @@ BAD_COMMANDS = [
     (["run", "{good}", "--out", "{occupied}", "--restart", "{garbage}"], "unreadable"),
     (["run", "{syntax}"], "line 2"),
     (["run", "{toplist}"], "mapping"),
+    # a key given twice is an error (plain yaml.safe_load would keep the last one silently)
+    (["run", "{duplicate}"], "duplicate key 'grid'"),
+    (["check", "{duplicate_inner}"], "duplicate key 'points'"),
+    # an alias bomb and a character device are refused before anything is expanded or read
+    (["check", "{bomb}"], "expands to more than"),
+    (["check", "/dev/zero"], "not a regular file"),
+    (["check", "{huge}"], "too large"),
+    (["check", "{binary}"], "not a text file"),
+    (["run", "{good}", "--set", "grid.points=*nothing"], "not valid YAML"),
     (["inspect", "{missing}"], "no such file"),
     (["inspect", "{garbage}"], "not a readable HDF5"),
     (["inspect", "{foreign}"], "not one written by eddybox"),
@@ -145,6 +166,15 @@ def test_bad_command_lines(tmp_path, capsys, occupied, argv, needle):
     good.write_text(yaml.safe_dump(GOOD))
     (tmp_path / "syntax.yaml").write_text("grid: {points: 16\nfluid: [\n")
     (tmp_path / "toplist.yaml").write_text("- 1\n- 2\n")
+    (tmp_path / "duplicate.yaml").write_text("grid: {points: 16}\nfluid: {viscosity: 0.05}\n"
+                                             "grid: {points: 32}\n")
+    (tmp_path / "duplicate_inner.yaml").write_text("grid:\n  points: 16\n  points: 32\n")
+    bomb = ["a: &a [x, x, x, x, x, x, x, x, x, x]"]
+    for i in range(1, 9):  # 10^9 values once expanded
+        bomb.append(f"{chr(97 + i)}: &{chr(97 + i)} [" + ", ".join([f"*{chr(96 + i)}"] * 10) + "]")
+    (tmp_path / "bomb.yaml").write_text("\n".join(bomb) + "\n")
+    (tmp_path / "huge.yaml").write_text("# padding\n" * 200_000)
+    (tmp_path / "binary.yaml").write_bytes(b"grid: \xff\xfe\x00")
     (tmp_path / "garbage.h5").write_bytes(b"\x89HDF\r\n\x1a\n truncated")
     with h5py.File(tmp_path / "foreign.h5", "w") as f:
         f["x"] = [1, 2, 3]
@@ -152,6 +182,9 @@ def test_bad_command_lines(tmp_path, capsys, occupied, argv, needle):
     subs = {"missing": tmp_path / "missing.yaml", "dir": tmp_path, "good": good,
             "occupied": occupied, "empty": tmp_path / "empty", "syntax": tmp_path / "syntax.yaml",
             "toplist": tmp_path / "toplist.yaml", "garbage": tmp_path / "garbage.h5",
+            "duplicate": tmp_path / "duplicate.yaml", "duplicate_inner": tmp_path / "duplicate_inner.yaml",
+            "bomb": tmp_path / "bomb.yaml", "huge": tmp_path / "huge.yaml",
+            "binary": tmp_path / "binary.yaml",
             "foreign": tmp_path / "foreign.h5"}
     argv = [a.format(**subs) if "{" in a else a for a in argv]
     before = _snapshot(occupied)

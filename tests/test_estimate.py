@@ -22,7 +22,7 @@ def test_memory_inventory_matches_live_arrays(config_factory, scheme, dealias, p
                                                     {"name": "b", "tau_p": 0.0, "count": 200}]}
     cfg = config_factory(**kw)
     sim = Simulation(cfg, overwrite=True, quiet=True)
-    assert predicted_inventory(cfg.data) == live_inventory(sim)
+    assert predicted_inventory(cfg) == live_inventory(sim)
 
 
 def test_time_model_reproduces_its_calibration_points():
@@ -58,7 +58,7 @@ def test_estimate_table_and_scaling(tmp_path, capsys):
         assert word in out
     from eddybox.solver.run.config import validate
 
-    c = validate(cfg).data
+    c = validate(cfg)
     calib = calibration.load_calibration(str(cal))
     e1 = est.estimate(c, 256, 1, cal=calib)
     e8 = est.estimate(c, 256, 8, cal=calib)

@@ -146,8 +146,9 @@ def test_ou_process_statistics(config_factory):
 
     sim = build(config_factory)
     T, dt = 0.5, 0.05
-    f = make_forcing({"kind": "ou", "band": 2.0, "timescale": T, "dissipation": 0.2, "variance": None},
-                     sim.layout, seed=5)
+    section = config_factory(forcing={"kind": "ou", "band": 2.0, "timescale": T,
+                                      "dissipation": 0.2}).forcing
+    f = make_forcing(section, sim.layout, seed=5)
     samples = []
     for _ in range(4000):
         f.begin_step(sim, dt)

@@ -71,19 +71,14 @@ def test_every_ghost_plane_comes_once_from_its_owner(n, parts, w):
 
 
 def test_ghost_bytes_hand_counts():
-    cfg = {"grid": {"points": 64}, "particles": {"interpolation": 8, "sets": [{"interpolation": None}]},
-           "parallel": {"grid": None}}
     # slab 2 x 1, w = 6: block 32 + 12 planes of 64 x 64, plus 12 planes sent and 12 received
-    assert mig.ghost_field_bytes(cfg, 2, "slab") == 3 * 8 * 64 * 64 * (44 + 24)
+    assert mig.ghost_field_bytes(64, 8, 2, "slab") == 3 * 8 * 64 * 64 * (44 + 24)
     # pencil 2 x 2: 44 x 44 x 64 block; x stage moves 24 planes of 32 x 64 (interior y rows),
     # y stage 24 planes of 44 x 64 (the x-extended rows)
-    assert mig.ghost_field_bytes(cfg, 4, "pencil") == 3 * 8 * 64 * (44 * 44 + 24 * 32 + 24 * 44)
+    assert mig.ghost_field_bytes(64, 8, 4, "pencil") == 3 * 8 * 64 * (44 * 44 + 24 * 32 + 24 * 44)
     # an explicit grid: 1 x 4 splits only y (16 per rank): 64 x 28 x 64, 24 planes of 64 x 64
-    cfg["parallel"]["grid"] = [1, 4]
-    assert mig.ghost_field_bytes(cfg, 4, "pencil") == 3 * 8 * 64 * (64 * 28 + 24 * 64)
-    from eddybox.particles.system import ghost_field_bytes
-
-    assert ghost_field_bytes(cfg, 1, "serial") == 0
+    assert mig.ghost_field_bytes(64, 8, 4, "pencil", [1, 4]) == 3 * 8 * 64 * (64 * 28 + 24 * 64)
+    assert mig.ghost_field_bytes(64, 8, 1, "serial") == 0
 
 
 # ---------------------------------------------------------------------------------------------

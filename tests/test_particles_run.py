@@ -115,8 +115,10 @@ def test_physical_units_map_to_stokes_and_froude(config_factory, capsys):
     from eddybox.particles.physical import physical_numbers
     from eddybox.solver.study.check import check_lines
 
+    from eddybox.solver.run.config import PhysicalConfig
+
     phys = {"viscosity": 1.5e-5, "dissipation": 0.01, "fluid_density": 1.2, "gravity": 9.81}
-    num = physical_numbers(10e-6, 1000.0, phys)
+    num = physical_numbers(10e-6, 1000.0, PhysicalConfig.parse(phys, "particles.physical"))
     tau_p = 1000.0 * (20e-6) ** 2 / (18 * 1.2 * 1.5e-5)
     assert num["tau_p"] == pytest.approx(tau_p, rel=1e-12)
     assert num["stokes"] == pytest.approx(tau_p / np.sqrt(1.5e-5 / 0.01), rel=1e-12)

@@ -62,7 +62,7 @@ def test_plan_is_the_cartesian_product_with_safe_folder_names(config_file, tmp_p
     root, runs = plan_runs(config_file, ["forcing.timescale=0.25,0.5,1", "particles.gravity="
                                          "[0,0,-1],[0, 0, -2]"], [], tmp_path / "s")
     assert root == tmp_path / "s" and len(runs) == 3 * 2
-    combos = {(r.config["forcing"]["timescale"], r.config["particles"]["gravity"][2]) for r in runs}
+    combos = {(r.config.forcing.timescale, r.config.particles.gravity[2]) for r in runs}
     assert combos == {(a, b) for a in (0.25, 0.5, 1.0) for b in (-1.0, -2.0)}
     assert len({r.folder for r in runs}) == 6
     for r in runs:

@@ -6,10 +6,11 @@ from __future__ import annotations
 import numpy as np
 
 from eddybox.solver.errors import InitialFieldError
+from eddybox.solver.fields import Num, Text
 from eddybox.solver.fluid import spectral_ops as ops
 
 INITIAL_FIELDS: dict[str, callable] = {}
-#: config keys each kind accepts: name -> (default, description)
+#: config keys each kind accepts: name -> eddybox.solver.fields.Field
 INITIAL_PARAMS: dict[str, dict] = {}
 
 
@@ -41,11 +42,11 @@ def rest(cfg, layout, nonlinear, seed, uh):
     uh[...] = 0.0
 
 
-@register("taylor-green", amplitude=(1.0, "U_0"))
+@register("taylor-green", amplitude=Num(1.0, "amplitude U_0", "L T^-1", lo=-1e6, hi=1e6))
 def taylor_green(cfg, layout, nonlinear, seed, uh):
     """Taylor & Green (1937), Proc. R. Soc. A 158: u = U0 (sin x cos y cos z,
     -cos x sin y cos z, 0), with x scaled by 2 pi / L. All modes sit at |k|^2 = 3 k0^2."""
-    u0 = float(cfg.get("amplitude", 1.0))
+    u0 = float(cfg.amplitude)
     x, y, z = _coords(layout)
     k = layout.k0
     X, Y, Z = np.meshgrid(k * x, k * y, k * z, indexing="ij", sparse=True)
@@ -53,12 +54,13 @@ def taylor_green(cfg, layout, nonlinear, seed, uh):
     _from_physical(layout, nonlinear, comps, uh)
 
 
-@register("abc", a=(1.0, "A"), b=(1.0, "B"), c=(1.0, "C"))
+@register("abc", a=Num(1.0, "A", "L T^-1", lo=-1e6, hi=1e6), b=Num(1.0, "B", "L T^-1", lo=-1e6, hi=1e6),
+          c=Num(1.0, "C", "L T^-1", lo=-1e6, hi=1e6))
 def abc(cfg, layout, nonlinear, seed, uh):
     """Arnold-Beltrami-Childress flow (Dombre et al. 1986, J. Fluid Mech. 167):
     u = (A sin kz + C cos ky, B sin kx + A cos kz, C sin ky + B cos kx), k = 2 pi / L.
     It is a Beltrami field (curl u = k u), so u x omega = 0 and it decays as exp(-nu k^2 t)."""
-    a, b, c = (float(cfg.get(n, 1.0)) for n in "abc")
+    a, b, c = float(cfg.a), float(cfg.b), float(cfg.c)
     x, y, z = _coords(layout)
     k = layout.k0
     X, Y, Z = np.meshgrid(k * x, k * y, k * z, indexing="ij", sparse=True)
@@ -67,7 +69,8 @@ def abc(cfg, layout, nonlinear, seed, uh):
     _from_physical(layout, nonlinear, [np.broadcast_to(v, layout.phys_shape) for v in comps], uh)
 
 
-@register("spectrum", energy=(0.5, "total kinetic energy E_0"), peak=(3.0, "k_p in units of 2 pi / L"))
+@register("spectrum", energy=Num(0.5, "total kinetic energy E_0", "L^2 T^-2", lo=0.0, lo_open=True),
+          peak=Num(3.0, "peak wavenumber k_p", "2π/L", lo=0.0, lo_open=True, hi=1e6))
 def spectrum(cfg, layout, nonlinear, seed, uh):
     """Random solenoidal field with the model spectrum E(k) ~ k^4 exp(-2 (k/k_p)^2)
     (a common initial spectrum for decaying and forced DNS; e.g. Rogallo 1981), scaled to the
@@ -75,8 +78,8 @@ def spectrum(cfg, layout, nonlinear, seed, uh):
     projected to be solenoidal; Hermitian symmetry on the kz = 0 plane is enforced from a
     plane drawn identically on every rank; other planes are drawn per kx plane from
     generators keyed by (seed, plane) so any block decomposition sees the same field."""
-    e0 = float(cfg.get("energy", 0.5))
-    kp = float(cfg.get("peak", 3.0))
+    e0 = float(cfg.energy)
+    kp = float(cfg.peak)
     n, nh = layout.n, layout.n // 2 + 1
     sx, sy, sz = layout.spec_start
     nx, ny, nz = layout.spec_shape
@@ -108,14 +111,14 @@ def spectrum(cfg, layout, nonlinear, seed, uh):
         uh *= np.sqrt(e0 / e)
 
 
-@register("file", path=(None, "field snapshot or checkpoint written by eddybox"))
+@register("file", path=Text(None, "field snapshot or checkpoint written by eddybox", none_ok=False))
 def from_file(cfg, layout, nonlinear, seed, uh):
     """Velocity from an eddybox field snapshot or checkpoint (dataset `velocity_hat`, global
     half-complex coefficients). A different N is handled by spectral truncation (coarser
     target) or zero padding (finer target); the box length must match."""
     import h5py
 
-    path = cfg.get("path")
+    path = cfg.path
     try:
         with h5py.File(path, "r") as f:
             if "velocity_hat" not in f:
@@ -146,6 +149,7 @@ def energy_local(uh, layout) -> float:
     return float(ops.energy_sum(uh, layout.wz))
 
 
-def build_initial(cfg: dict, layout, nonlinear, seed: int, uh):
-    INITIAL_FIELDS[cfg["kind"]](cfg, layout, nonlinear, seed, uh)
+def build_initial(cfg, layout, nonlinear, seed: int, uh):
+    """Fill uh with the initial field of config section `cfg` (its `kind` picks the builder)."""
+    INITIAL_FIELDS[cfg.kind](cfg, layout, nonlinear, seed, uh)
     return uh

@@ -22,30 +22,33 @@ def local_shapes(n: int, ranks: int = 1, layout: str = "serial", grid=None):
     return int(np.prod(g.phys_shape)), int(np.prod(g.spec_shape))
 
 
-def predicted_inventory(cfg: dict, ranks: int = 1, layout: str = "serial",
+def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
                         particles_per_rank: int | None = None) -> dict:
-    """name -> bytes per rank of every large array the solver allocates."""
-    n = cfg["grid"]["points"]
+    """name -> bytes per rank of every large array the solver allocates for the validated
+    config `cfg`."""
+    n = cfg.grid.points
     phys, spec = local_shapes(n, ranks, layout)
-    scheme = SCHEMES[cfg["time"]["scheme"]]
+    scheme = SCHEMES[cfg.time.scheme]
     inv = {"velocity_hat": 3 * spec * COMPLEX,
            "scheme_work": 3 * scheme.extra_arrays * spec * COMPLEX,
            "fft_scratch": spec * COMPLEX,
            "physical_velocity": 3 * phys * REAL,
            "physical_vorticity": 3 * phys * REAL}
-    if cfg["fluid"]["dealias"] == "phase-shift":
+    if cfg.fluid.dealias == "phase-shift":
         inv["phase_shift_copy"] = 3 * spec * COMPLEX
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import transpose_buffer_points
 
         inv["transpose_buffers"] = transpose_buffer_points(n, ranks, layout) * COMPLEX
-    sets = cfg["particles"]["sets"]
-    if sets:
-        from eddybox.particles.system import bytes_per_particle, ghost_field_bytes
+    p = cfg.particles
+    if p.sets:
+        from eddybox.particles.migration import ghost_field_bytes
+        from eddybox.particles.system import bytes_per_particle
 
-        count = sum(s["count"] for s in sets) if particles_per_rank is None else particles_per_rank
+        count = sum(s.count for s in p.sets) if particles_per_rank is None else particles_per_rank
         inv["particles"] = bytes_per_particle() * count
-        g = ghost_field_bytes(cfg, ranks, layout)
+        order = max(s.interpolation or p.interpolation for s in p.sets)
+        g = ghost_field_bytes(n, order, ranks, layout, cfg.parallel.grid)
         if g:
             inv["ghosted_velocity"] = g
     return inv

@@ -14,26 +14,26 @@ INTEGRAL_OVER_FORCING_WAVELENGTH = 0.45
 
 
 def kmax(config) -> float:
-    n = config["grid"]["points"]
-    k0 = 2 * math.pi / config["grid"]["length"]
-    return k0 * (math.sqrt(2) * n / 3 if config["fluid"]["dealias"] == "phase-shift" else n / 3)
+    n = config.grid.points
+    k0 = 2 * math.pi / config.grid.length
+    return k0 * (math.sqrt(2) * n / 3 if config.fluid.dealias == "phase-shift" else n / 3)
 
 
 def forcing_target(config):
     """The dissipation the forcing aims at, or None."""
-    f = config["forcing"]
-    if f["kind"] == "ou":
-        if f.get("dissipation") is not None:
-            return f["dissipation"]
-        if f.get("variance") is not None:
+    f = config.forcing
+    if f.kind == "ou":
+        if f.dissipation is not None:
+            return f.dissipation
+        if f.variance is not None:
             from eddybox.forcing.band import full_mode_count
 
-            return 4 * full_mode_count(f["band"]) * f["variance"] * f["timescale"]
+            return 4 * full_mode_count(f.band) * f.variance * f.timescale
         return 0.1
-    if f["kind"] in ("linear",) and f.get("dissipation") is not None:
-        return f["dissipation"]
-    if f["kind"] == "reinject" and f["mode"] == "power":
-        return f["dissipation"]
+    if f.kind == "linear" and f.dissipation is not None:
+        return f.dissipation
+    if f.kind == "reinject" and f.mode == "power":
+        return f.dissipation
     return None
 
 
@@ -41,15 +41,15 @@ def predicted(config) -> dict:
     """Kolmogorov scales from the target dissipation; u' and Re_lambda from eps = C_eps u'^3 / L
     with the integral scale L taken as 0.45 of the forcing wavelength 2 pi / (k0 band) (a rough
     estimate)."""
-    nu = config["fluid"]["viscosity"]
+    nu = config.fluid.viscosity
     eps = forcing_target(config)
-    out = {"dx": config["grid"]["length"] / config["grid"]["points"], "kmax": kmax(config)}
+    out = {"dx": config.grid.length / config.grid.points, "kmax": kmax(config)}
     if eps:
         eta = (nu**3 / eps) ** 0.25
         out.update(target_dissipation=eps, eta=eta, tau_eta=math.sqrt(nu / eps),
                    kmax_eta=out["kmax"] * eta)
-        band = config["forcing"].get("band") or 2.0
-        k0 = 2 * math.pi / config["grid"]["length"]
+        band = getattr(config.forcing, "band", None) or 2.0
+        k0 = 2 * math.pi / config.grid.length
         # integral scale ~ 0.45 of the forcing wavelength: what eddybox's own forced runs at
         # band 2 show (L = 1.38 in a 2 pi box); an estimate, not a published constant
         lf = INTEGRAL_OVER_FORCING_WAVELENGTH * 2 * math.pi / (k0 * band)
@@ -59,7 +59,7 @@ def predicted(config) -> dict:
 
 
 def derived_block(config, sim=None) -> dict:
-    out = {k: float(v) for k, v in predicted(config.data).items()}
+    out = {k: float(v) for k, v in predicted(config).items()}
     out["config_hash"] = config.hash()
     out["physics_hash"] = config.physics_hash()
     if sim is not None:

@@ -35,7 +35,7 @@ from eddybox.solver.fluid.navier_stokes import NonlinearTerm
 from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 from eddybox.solver.run import checkpoint as ckpt
 from eddybox.solver.run import scales
-from eddybox.solver.run.config import differing_keys
+from eddybox.solver.run.config import differing_keys, restart_mutable_keys
 from eddybox.solver.run.hooks import FieldsHook, FluidHook, Schedule
 from eddybox.solver.run.progress import Progress, RunLog
 
@@ -65,20 +65,20 @@ class Simulation:
     def __init__(self, config, output=None, overwrite=False, restart=None, comm=None,
                  quiet=False, stream=None):
         self.config = config
-        c = config.data
+        c = config.root
         self.comm = comm
         self.out = str(output or config.output)
-        self.layout = make_layout(c["grid"]["points"], c["grid"]["length"], c["parallel"]["layout"],
-                                  c["parallel"]["grid"], comm)
+        self.layout = make_layout(c.grid.points, c.grid.length, c.parallel.layout, c.parallel.grid,
+                                  comm)
         self.is_root = self.layout.rank == 0
         fft.configure_threads(self.layout.threads)
-        self.nu = c["fluid"]["viscosity"]
-        self.dx = c["grid"]["length"] / c["grid"]["points"]
-        self.frozen = c["fluid"]["frozen"]
-        self.nl = NonlinearTerm(self.layout, c["fluid"]["dealias"])
-        self.scheme = SCHEMES[c["time"]["scheme"]](self.layout, self.nl, self.nu)
+        self.nu = c.fluid.viscosity
+        self.dx = c.grid.length / c.grid.points
+        self.frozen = c.fluid.frozen
+        self.nl = NonlinearTerm(self.layout, c.fluid.dealias)
+        self.scheme = SCHEMES[c.time.scheme](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
-        self.forcing = make_forcing(c["forcing"], self.layout, c["seed"])
+        self.forcing = make_forcing(c.forcing, self.layout, c.seed)
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None
         self._stop_signal = None
@@ -92,7 +92,7 @@ class Simulation:
             self._check_compatible(restart_path, ck[1])
         else:
             try:
-                build_initial(c["fluid"]["initial"], self.layout, self.nl, c["seed"], self.uh)
+                build_initial(c.fluid.initial, self.layout, self.nl, c.seed, self.uh)
             except InitialFieldError as exc:
                 raise ConfigError(f"fluid.initial.path: {exc}") from None
         # the folder check runs on rank 0; its verdict reaches every rank, so all stop together
@@ -108,26 +108,29 @@ class Simulation:
         self.log = RunLog(os.path.join(self.out, "log.txt") if self.is_root else None, quiet or not self.is_root,
                           stream=stream)
         self.log.write(f"eddybox run: {config.summary()}")
-        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]])
-        if c["time"]["cfl"] > bound:
-            self.log.write(f"warning: time.cfl = {c['time']['cfl']} is above {bound:.2f}, the "
+        bound = spectral_cfl_bound(SCHEMES[c.time.scheme])
+        if c.time.cfl > bound:
+            self.log.write(f"warning: time.cfl = {c.time.cfl} is above {bound:.2f}, the "
                            "stability bound for pseudo-spectral advection; the run may become unstable")
         self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
-                       f"{c['fluid']['dealias']}; output {self.out}")
+                       f"{c.fluid.dealias}; output {self.out}")
 
-        st = c["stats"]
-        self.hooks = [FluidHook(st["fluid"]["every"], st["spectra"]["every"], os.path.join(self.out, "fluid.h5")),
-                      FieldsHook(st["fields"]["every"], os.path.join(self.out, "fields"))]
+        st = c.stats
+        self.hooks = [FluidHook(st.fluid.every, st.spectra.every, os.path.join(self.out, "fluid.h5")),
+                      FieldsHook(st.fields.every, os.path.join(self.out, "fields"))]
         self.particles = None
-        if c["particles"]["sets"]:
+        if c.particles.sets:
             from eddybox.particles.hooks import PairHook, ParticleHook
             from eddybox.particles.system import ParticleSystem
 
-            self.particles = ParticleSystem(c, self.layout)
-            self.hooks.append(ParticleHook(st["particles"], os.path.join(self.out, "particles.h5"), c))
-            if st["pairs"]["every"] is not None:
-                self.hooks.append(PairHook(st["pairs"], os.path.join(self.out, "pairs.h5"), c))
-        every = c["checkpoint"]["every"]
+            self.particles = ParticleSystem(c.particles, c.grid, c.seed, self.layout)
+            series_every = st.particles.series_every
+            self.hooks.append(ParticleHook(st.particles, os.path.join(self.out, "particles.h5"),
+                                           st.fluid.every if series_every is None else series_every))
+            if st.pairs.every is not None:
+                self.hooks.append(PairHook(st.pairs, os.path.join(self.out, "pairs.h5"),
+                                           [s.name for s in c.particles.sets], c.grid.length, c.seed))
+        every = c.checkpoint.every
         self.checkpoint_schedule = Schedule(every, start=every or 0.0)
 
         if restart_path is not None:
@@ -166,23 +169,23 @@ class Simulation:
 
     # ------------------------------------------------------------------ time stepping
     def _choose_dt(self, umax: float) -> float:
-        c = self.config.data["time"]
+        c = self.config.time
         if not np.isfinite(umax):
             raise NumericalInstability(
                 f"the velocity field is no longer finite at t={self.t:.6g} (step {self.step})")
-        limit = SCHEMES[c["scheme"]].cfl_limit
+        limit = SCHEMES[c.scheme].cfl_limit
         if self.dt > 0 and umax * self.dt / self.dx > CFL_ALARM * limit:
             # the last step's dt against the new velocity: a jump this large within one step
             # only comes from an instability (or a blow-up of the forcing)
             raise NumericalInstability(
                 f"CFL number {umax * self.dt / self.dx:.3g} of the last step exceeded the limit "
-                f"{limit} of scheme {c['scheme']} by more than {100 * (CFL_ALARM - 1):.0f}% at "
+                f"{limit} of scheme {c.scheme} by more than {100 * (CFL_ALARM - 1):.0f}% at "
                 f"t={self.t:.6g} (step {self.step}; max |u|+|v|+|w| = {umax:.4g}, dt = {self.dt:.4g})")
-        dt = c["cfl"] * self.dx / umax if umax > 1e-300 else (c["max_dt"] or c["cfl"] * self.dx)
-        if c["max_dt"] is not None:
-            dt = min(dt, c["max_dt"])
-        if self.t + dt > c["end"]:
-            dt = max(c["end"] - self.t, 1e-300)  # land on the end time exactly
+        dt = c.cfl * self.dx / umax if umax > 1e-300 else (c.max_dt or c.cfl * self.dx)
+        if c.max_dt is not None:
+            dt = min(dt, c.max_dt)
+        if self.t + dt > c.end:
+            dt = max(c.end - self.t, 1e-300)  # land on the end time exactly
         self.cfl = dt * umax / self.dx
         return dt
 
@@ -231,7 +234,7 @@ class Simulation:
                      "layout": self.layout.kind}
             path = ckpt.write_checkpoint(os.path.join(self.out, "checkpoints"), self.step, uh, attrs,
                                          state, self.config.hash(), self.layout.length,
-                                         self.config.data["checkpoint"]["keep"])
+                                         self.config.checkpoint.keep)
         self.layout.barrier()
         self._t_checkpoint = max(getattr(self, "_t_checkpoint", 0.0), _time.monotonic() - t0)
         self.last_checkpoint = path
@@ -256,8 +259,8 @@ class Simulation:
         if old.physics_hash() != self.config.physics_hash():
             keys = differing_keys(old.physics(), self.config.physics())
             raise ConfigError(f"--restart {path}: the checkpoint was written with a different "
-                              f"config; differing keys: {', '.join(keys)} (only time.end, "
-                              "time.max_steps, time.walltime and checkpoint.* may change)")
+                              f"config; differing keys: {', '.join(keys)} (only "
+                              f"{', '.join(restart_mutable_keys())} may change)")
 
     def _load(self, ck, path):
         uh, attrs, state = ck
@@ -301,10 +304,10 @@ class Simulation:
             signal.signal(s, h)
 
     def _finished(self):
-        c = self.config.data["time"]
-        if self.t >= c["end"] - 1e-12 * max(1.0, abs(c["end"])):
+        c = self.config.time
+        if self.t >= c.end - 1e-12 * max(1.0, abs(c.end)):
             return "end time reached"
-        if c["max_steps"] is not None and self.step >= c["max_steps"]:
+        if c.max_steps is not None and self.step >= c.max_steps:
             return "max_steps reached"
         return None
 
@@ -313,8 +316,8 @@ class Simulation:
         budget (a checkpoint is written first). NumericalInstability propagates."""
         self._t_start = _time.monotonic()
         self._install_signals()
-        progress = Progress(self.log, self.config.data["time"]["end"], self)
-        walltime = self.config.data["time"]["walltime"]
+        progress = Progress(self.log, self.config.time.end, self)
+        walltime = self.config.time.walltime
         step_times = []
         try:
             if self.restart_from is None:
@@ -352,7 +355,7 @@ class Simulation:
             progress.close()
             last = ckpt.latest_checkpoint(os.path.join(self.out, "checkpoints"))
             msg = (f"numerical instability: {exc}. Try a smaller time.cfl (now "
-                   f"{self.config.data['time']['cfl']}), more grid.points (now "
+                   f"{self.config.time.cfl}), more grid.points (now "
                    f"{self.layout.n}) or a larger fluid.viscosity (now {self.nu}). "
                    f"Last good checkpoint: {last or 'none'}")
             self.log.write(msg)

@@ -239,10 +239,10 @@ def bench_estimate(quick=False):
     cal_sizes = (24, 32, 48, 80) if quick else (32, 48, 80, 112)
     cal = calibrate(cal_sizes, save=False)
     cfg = validate({"grid": {"points": 64}, "fluid": {"viscosity": 0.01},
-                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}}).data
+                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}})
     over = []
     for n in cal_sizes[:2]:
-        inv = sum(predicted_inventory(dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})).values())
+        inv = sum(predicted_inventory(cfg.with_changes({"grid.points": n})).values())
         over.append(peak_rss_bytes(n, "rk4") - inv)
     cal["memory_overhead_bytes"] = float(np.median(over))
     _LAST_CALIBRATION.clear()
@@ -253,7 +253,7 @@ def bench_estimate(quick=False):
         measured = measure_fluid_points((n,))[0]["step_seconds"]
         predicted, _ = est.step_time(cal, n, 1, "rk4")
         mem_measured = peak_rss_bytes(n, "rk4")
-        c = dict(cfg, grid={"points": n, "length": cfg["grid"]["length"]})
+        c = cfg.with_changes({"grid.points": n})
         mem_predicted = sum(predicted_inventory(c).values()) + cal["memory_overhead_bytes"]
         out[f"step_seconds_measured_{n}"] = measured
         out[f"step_seconds_predicted_{n}"] = predicted

@@ -111,7 +111,7 @@ def calibrate(sizes=(16, 24, 32, 48), save=True, extra=None):
     from eddybox.solver.run.inventory import predicted_inventory
 
     n = sizes[0]
-    c = validate({"grid": {"points": n}}).data
+    c = validate({"grid": {"points": n}})
     cal["memory_overhead_bytes"] = max(0.0, peak_rss_bytes(n, "rk4") - sum(predicted_inventory(c).values()))
     cal.update(extra or {})
     if save:

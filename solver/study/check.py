@@ -9,10 +9,9 @@ from eddybox.solver.run.inventory import human_bytes, predicted_inventory
 
 
 def check_lines(cfg) -> list[str]:
-    d = cfg.data
     out = [f"config {cfg.source}: valid", f"  {cfg.summary()}", "", "resolved config:"]
     out += ["  " + line for line in cfg.to_yaml().rstrip().splitlines()]
-    p = scales.predicted(d)
+    p = scales.predicted(cfg)
     out += ["", "derived scales (predicted from the config):",
             f"  grid spacing dx            {p['dx']:.5g}",
             f"  k_max after dealiasing     {p['kmax']:.5g}"]
@@ -27,24 +26,24 @@ def check_lines(cfg) -> list[str]:
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
                             "resolved; use more grid.points or a larger fluid.viscosity "
-                            f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * d['grid']['length'] / (2 * math.pi))})")
+                            f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * cfg.grid.length / (2 * math.pi))})")
     else:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
     from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 
-    bound = spectral_cfl_bound(SCHEMES[d["time"]["scheme"]])
-    if d["time"]["cfl"] > bound:
-        warnings.append(f"time.cfl = {d['time']['cfl']} is above {bound:.2f}, the stability bound of "
-                        f"{d['time']['scheme']} for pseudo-spectral advection; the run may become "
+    bound = spectral_cfl_bound(SCHEMES[cfg.time.scheme])
+    if cfg.time.cfl > bound:
+        warnings.append(f"time.cfl = {cfg.time.cfl} is above {bound:.2f}, the stability bound of "
+                        f"{cfg.time.scheme} for pseudo-spectral advection; the run may become "
                         "unstable (exit code 3)")
     from eddybox.particles.physical import particle_lines
 
-    plines, pwarn = particle_lines(cfg, p)
+    plines, pwarn = particle_lines(cfg.particles, p)
     out += plines
     warnings += pwarn
-    inv = predicted_inventory(d)
+    inv = predicted_inventory(cfg)
     total = sum(inv.values())
-    n3 = d["grid"]["points"] ** 3
+    n3 = cfg.grid.points ** 3
     out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
     out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]

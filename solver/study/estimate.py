@@ -19,7 +19,6 @@ array inventory (eddybox.solver.run.inventory), the same list a live Simulation 
 """
 from __future__ import annotations
 
-import json
 import math
 
 from eddybox.solver.errors import ConfigError
@@ -61,16 +60,15 @@ def step_time(cal, n, ranks, scheme, layout="auto", particles=0, order=8, bandwi
     return sum(parts.values()), parts
 
 
-def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, latency=None, cal=None):
-    """A dict of every figure the estimate table prints."""
+def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=None, cal=None):
+    """A dict of every figure the estimate table prints, for the validated config `cfg` run
+    at n^3 on `ranks` ranks (with `particles` in all, split as the config's sets are)."""
     from eddybox.solver.run import scales
 
     if n < 4 or n % 2:
         raise ConfigError(f"--points: expected an even integer >= 4, got {n}")
     if ranks < 1:
         raise ConfigError(f"--ranks: expected a positive integer, got {ranks}")
-    cfg = json.loads(json.dumps(cfg))
-    cfg["grid"]["points"] = n
     layout = "serial"
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import resolve_grid
@@ -79,13 +77,19 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
             layout, _ = resolve_grid(n, ranks, "auto")
         except ConfigError as exc:
             raise ConfigError(f"--ranks: {exc}") from None
-    sets = cfg["particles"]["sets"]
-    total_particles = particles if particles is not None else sum(s["count"] for s in sets)
+    sets = cfg.particles.sets
+    total_particles = particles if particles is not None else sum(s.count for s in sets)
+    changes = {"grid.points": n}
     if particles is not None and sets:
         # scale every set to the requested total, keeping their proportions
-        tot = sum(s["count"] for s in sets)
-        for s in sets:
-            s["count"] = max(1, int(round(s["count"] * particles / tot)))
+        tot = sum(s.count for s in sets)
+        for i, s in enumerate(sets):
+            changes[f"particles.sets.{i}.count"] = max(1, int(round(s.count * particles / tot)))
+    try:
+        cfg = cfg.with_changes(changes)
+    except ConfigError as exc:
+        raise ConfigError(f"--points/--particles: {exc}") from None
+    sets = cfg.particles.sets
     inv = predicted_inventory(cfg, ranks, layout, particles_per_rank=-(-total_particles // ranks)
                               if sets else None)
     cal = cal or load_calibration() or calibrate()
@@ -95,28 +99,28 @@ def estimate(cfg: dict, n: int, ranks: int, particles=None, bandwidth=None, late
     pred = scales.predicted(cfg)
     u = pred.get("u_rms_estimate")
     if u is None:
-        init = cfg["fluid"]["initial"]
-        u = math.sqrt(2 * init.get("energy", 0.5) / 3) if init["kind"] == "spectrum" else 0.5
+        init = cfg.fluid.initial
+        u = math.sqrt(2 * init.energy / 3) if init.kind == "spectrum" else 0.5
     umax = cal.get("umax_over_urms", 6.0) * u
-    dx = cfg["grid"]["length"] / n
-    dt = cfg["time"]["cfl"] * dx / umax
-    if cfg["time"]["max_dt"]:
-        dt = min(dt, cfg["time"]["max_dt"])
-    steps = math.ceil(cfg["time"]["end"] / dt)
-    if cfg["time"]["max_steps"]:
-        steps = min(steps, cfg["time"]["max_steps"])
+    dx = cfg.grid.length / n
+    dt = cfg.time.cfl * dx / umax
+    if cfg.time.max_dt:
+        dt = min(dt, cfg.time.max_dt)
+    steps = math.ceil(cfg.time.end / dt)
+    if cfg.time.max_steps:
+        steps = min(steps, cfg.time.max_steps)
     # pairs inside r_max per sample, amortised over the steps between samples
     pairs_per_step = 0.0
-    pr = cfg["stats"]["pairs"]
-    if sets and pr["every"]:
+    pr = cfg.stats.pairs
+    if sets and pr.every:
         eta = pred.get("eta", dx)
-        r = pr["r_max"] * (eta if pr["units"] == "eta" else 1.0)
-        vol = cfg["grid"]["length"] ** 3
-        groups = [(a["count"], a["count"] / 2.0) for a in sets]
+        r = pr.r_max * (eta if pr.units == "eta" else 1.0)
+        vol = cfg.grid.length ** 3
+        groups = [(a.count, a.count / 2.0) for a in sets]
         npairs = sum(na * nb for na, nb in groups) * 4 / 3 * math.pi * r**3 / vol
-        pairs_per_step = npairs / max(1.0, pr["every"] / dt)
-    order = cfg["particles"]["interpolation"]
-    t, parts = step_time(cal, n, ranks, cfg["time"]["scheme"], "auto",
+        pairs_per_step = npairs / max(1.0, pr.every / dt)
+    order = cfg.particles.interpolation
+    t, parts = step_time(cal, n, ranks, cfg.time.scheme, "auto",
                          total_particles if sets else 0, order, bw, lat, pairs_per_step)
     threads = cal.get("threads", 1)
     return {"points": n, "ranks": ranks, "layout": layout, "particles": total_particles if sets else 0,
@@ -133,15 +137,15 @@ def print_estimate(args):
 
     cfg = cfgmod.load(args.config, args.set)
     cal = load_calibration(args.calibration) if args.calibration else None
-    e = estimate(cfg.data, args.points, args.ranks, args.particles, args.network_bandwidth,
+    e = estimate(cfg, args.points, args.ranks, args.particles, args.network_bandwidth,
                  args.network_latency, cal)
     print(f"estimate for {cfg.source} at {e['points']}^3 on {e['ranks']} rank(s) ({e['layout']} layout)")
     print(f"  memory per rank         {human_bytes(e['memory_per_rank'])}")
     for k, v in e["inventory"].items():
         print(f"    {k:22s} {human_bytes(v)}")
-    print(f"  time step dt            {e['dt']:.4g}  (cfl {cfg['time']['cfl']} x dx / U_max, U_max = "
+    print(f"  time step dt            {e['dt']:.4g}  (cfl {cfg.time.cfl} x dx / U_max, U_max = "
           f"{e['umax']:.3g} from u' = {e['u_rms']:.3g})")
-    print(f"  steps to t = {cfg['time']['end']:g}      {e['steps']}")
+    print(f"  steps to t = {cfg.time.end:g}      {e['steps']}")
     print(f"  seconds per step        {e['seconds_per_step']:.4g}")
     for k, v in e["parts"].items():
         print(f"    {k:22s} {v:.4g} s")

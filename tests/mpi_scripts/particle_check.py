@@ -292,9 +292,7 @@ def check_case(case):
     res = {"proc_grid": list(bm.proc_grid)}
     u = np.random.default_rng(1234 + n).standard_normal((3, n, n, n))
     check_ghosts(lay, bm, n, u, res)
-    cfg = {"grid": {"points": n}, "parallel": {"grid": grid},
-           "particles": {"interpolation": 8, "sets": [{"interpolation": None}]}}
-    res["ghost_bytes_predicted"] = mig.ghost_field_bytes(cfg, size, kind)
+    res["ghost_bytes_predicted"] = mig.ghost_field_bytes(n, 8, size, kind, grid)
     out, g_x, g_v, g_ids = check_particles(lay, bm, n, res)
     check_pairs(lay, bm, out, g_x, g_v, g_ids, res)
     return res
