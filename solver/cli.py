@@ -29,6 +29,9 @@ class _Parser(argparse.ArgumentParser):
 def _parser():
     p = _Parser(prog="eddybox", description="Forced isotropic turbulence with inertial particles "
                 "and in-situ pair statistics.")
+    from eddybox.solver import __version__
+
+    p.add_argument("--version", action="version", version=f"eddybox {__version__}")
     sub = p.add_subparsers(dest="command", parser_class=_Parser)
 
     def with_config(sp):
@@ -58,6 +61,8 @@ def _parser():
     s = sub.add_parser("schema", help="print the JSON Schema of the config (for editors), or the "
                        "README's config reference with --markdown")
     s.add_argument("--markdown", action="store_true", help="the config reference as a Markdown table")
+    s.add_argument("--write-readme", metavar="README", help="replace the config reference between "
+                   "the marker lines of this README (for contributors)")
 
     b = sub.add_parser("bench", help="measure performance ratios on this machine")
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
@@ -95,6 +100,19 @@ def _add_estimate(sp):
     sp.add_argument("--network-bandwidth", type=float, default=None, help="bytes/s per rank")
     sp.add_argument("--network-latency", type=float, default=None, help="seconds per message")
     sp.add_argument("--calibration", default=None, help="JSON written by eddybox bench")
+    j = sp.add_argument_group("batch job script (the restart chain of the production run)")
+    j.add_argument("--job-script", metavar="FILE", help="write a batch script for the run here")
+    j.add_argument("--scheduler", default="slurm", help="slurm (default) or pbs")
+    j.add_argument("--cores-per-node", type=int, default=48, help="cores of one node (default 48)")
+    j.add_argument("--margin", type=float, default=0.25,
+                   help="extra wall time over the estimate, as a fraction (default 0.25)")
+    j.add_argument("--max-walltime", default="24:00:00",
+                   help="the queue's longest job, HH:MM:SS (default 24:00:00); the chain resumes "
+                        "what one job cannot finish")
+    j.add_argument("--job-walltime", default=None, help="each job's limit, HH:MM:SS, instead of "
+                   "the one from the estimate")
+    j.add_argument("--out", default=None, help="the run folder the job writes (default: the "
+                   "config's output)")
 
 
 _EXTRA = {"sweep": ("one run per combination of varied keys", _add_sweep),
@@ -167,8 +185,12 @@ def cmd_inspect(args, comm=None):
 
 
 def cmd_schema(args, comm=None):
-    from eddybox.solver.run.config_docs import json_schema_text, reference_table
+    from eddybox.solver.run.config_docs import json_schema_text, reference_table, update_readme
 
+    if args.write_readme:
+        changed = update_readme(args.write_readme)
+        print(f"{args.write_readme}: config reference {'updated' if changed else 'already current'}")
+        return EXIT_DONE
     print(reference_table() if args.markdown else json_schema_text())
     return EXIT_DONE
 

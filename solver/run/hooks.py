@@ -94,8 +94,10 @@ class FluidHook(Hook):
     def open(self, sim, resume_samples=None):
         if not sim.is_root:
             return
+        # the fluid series, then those the forcing adds (e.g. the OU variance)
+        self.names = {**fluid_stats.SERIES, **sim.forcing.series_columns}
         cols = [Column(f"/series/{k}", u, d, dtype=np.int64 if k == "step" else np.float64,
-                       dims=["/series/time"]) for k, (u, d) in fluid_stats.SERIES.items()]
+                       dims=["/series/time"]) for k, (u, d) in self.names.items()]
         n_sh = fluid_stats.shell_count(sim.layout)
         k = np.arange(n_sh) * sim.layout.k0
         cols += [Column("/spectra/time", "T", "time of each spectrum", dims=["/spectra/time"]),
@@ -121,7 +123,7 @@ class FluidHook(Hook):
         if self.schedule.due(sim.t, sim.step):
             rec = sim.fluid_record()  # collective
             if self.file is not None:
-                self.file.append({f"/series/{k}": rec[k] for k in fluid_stats.SERIES})
+                self.file.append({f"/series/{k}": rec[k] for k in self.names})
             self.schedule.done(sim.t)
         if self.spectra.due(sim.t, sim.step):
             st = sim.spectral_stats()  # collective

@@ -78,7 +78,9 @@ class Simulation:
         self.nl = NonlinearTerm(self.layout, c.fluid.dealias)
         self.scheme = SCHEMES[c.time.scheme](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
-        self.forcing = make_forcing(c.forcing, self.layout, c.seed)
+        # times given in large-eddy turnovers ('0.5 T_E') resolved once, from the config alone
+        resolved, self.eddy_times = scales.resolve_eddy_times(config)
+        self.forcing = make_forcing(resolved.forcing, self.layout, c.seed)
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None
         self._stop_signal = None
@@ -145,6 +147,23 @@ class Simulation:
                 with open(os.path.join(self.out, "config.yaml"), "w") as fh:
                     fh.write(config.to_yaml(derived))
 
+    def _update_derived(self):
+        """Rewrite the forcing's entries of the derived block in config.yaml (a calibration
+        has ended), atomically: a reader sees the old file or the new one."""
+        if not self.is_root:
+            return
+        path = os.path.join(self.out, "config.yaml")
+        try:
+            with open(path) as fh:
+                data = yaml.safe_load(fh) or {}
+        except (OSError, yaml.YAMLError):
+            return  # the run's own copy is gone or damaged: nothing to update
+        data.setdefault("derived", {}).update(self.forcing.derived())
+        tmp = path + f".tmp{os.getpid()}"
+        with open(tmp, "w") as fh:
+            fh.write(yaml.safe_dump(data, sort_keys=False))
+        os.replace(tmp, path)
+
     # ------------------------------------------------------------------ state and statistics
     def energy(self) -> float:
         return self.layout.sum(float(ops.energy_sum(self.uh, self.layout.wz)))
@@ -162,6 +181,7 @@ class Simulation:
         rec.update(fluid_stats.derived_scales(sp["energy"], sp["dissipation"], sp["inv_k"], self.nu,
                                               self.nl.kmax()))
         rec.update(der)
+        rec.update(self.forcing.series())
         return rec
 
     def wall_time(self) -> float:
@@ -199,6 +219,11 @@ class Simulation:
         else:
             dt = self.scheme.step(self.uh, self.forcing, self._choose_dt, self)
             self.forcing.end_step(self, dt)
+            notes = self.forcing.drain_notes()
+            if notes:
+                for note in notes:
+                    self.log.write(note)
+                self._update_derived()
         self.dt = dt
         if self.particles is not None:
             self.particles.advance(self, dt)

@@ -22,7 +22,12 @@ def check_lines(cfg) -> list[str]:
                 f"  Kolmogorov time tau_eta    {p['tau_eta']:.5g}  = (nu/eps)^(1/2)",
                 f"  k_max eta                  {p['kmax_eta']:.3g}",
                 f"  u' (estimate)              {p['u_rms_estimate']:.3g}  from eps = {scales.C_EPS} u'^3/L, L = {scales.INTEGRAL_OVER_FORCING_WAVELENGTH} x forcing wavelength",
-                f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))"]
+                f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))",
+                f"  T_E = L/u' (estimate)      {p['eddy_time_estimate']:.3g}  large-eddy turnover time"]
+        _, eddy = scales.resolve_eddy_times(cfg)
+        for key, rec in eddy.items():
+            if isinstance(rec, dict):
+                out.append(f"  {key:26s} {rec['given']} = {rec['value']:.4g}  (with the T_E above)")
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
                             "resolved; use more grid.points or a larger fluid.viscosity "

@@ -136,6 +136,7 @@ def print_estimate(args):
     from eddybox.solver.run import config as cfgmod
 
     cfg = cfgmod.load(args.config, args.set)
+    job = job_options(args) if getattr(args, "job_script", None) else None
     cal = load_calibration(args.calibration) if args.calibration else None
     e = estimate(cfg, args.points, args.ranks, args.particles, args.network_bandwidth,
                  args.network_latency, cal)
@@ -160,3 +161,37 @@ def print_estimate(args):
     print("  u' from the forcing's target dissipation (eps = 0.5 u'^3 / L, L = 0.45 x forcing "
           "wavelength) or the initial energy; "
           "no allowance for I/O, checkpoints or queue time")
+    if job is not None:
+        write_job(args, cfg, e, *job)
+
+
+def job_options(args):
+    """The job-script options checked before anything is computed: (limit, forced limit)."""
+    import os
+
+    from eddybox.solver.fields import Duration
+    from eddybox.solver.study.jobscript import SCHEDULERS
+
+    if args.scheduler not in SCHEDULERS:
+        raise ConfigError(f"--scheduler: {args.scheduler!r} is not supported; choose one of "
+                          + ", ".join(SCHEDULERS))
+    if args.cores_per_node < 1:
+        raise ConfigError(f"--cores-per-node: expected a positive integer, got {args.cores_per_node}")
+    if not (math.isfinite(args.margin) and 0.0 <= args.margin <= 10.0):
+        raise ConfigError(f"--margin: expected a number between 0 and 10, got {args.margin}")
+    if os.path.exists(args.job_script):
+        raise ConfigError(f"--job-script {args.job_script}: exists; give a new file name")
+    return (Duration(none_ok=True).check("--max-walltime", args.max_walltime),
+            Duration(none_ok=True).check("--job-walltime", args.job_walltime))
+
+
+def write_job(args, cfg, e, limit, forced):
+    """`--job-script`: the batch script of the run's restart chain (solver.study.jobscript)."""
+    from eddybox.solver.study.jobscript import plan_job, write_job_script
+
+    out = args.out or str(cfg.output)
+    job = plan_job(args.config, out, cfg.name, e, args.cores_per_node, args.margin, limit, forced)
+    path = write_job_script(args.job_script, job, args.scheduler)
+    print(f"job script ({args.scheduler}) written to {path}: {job.nodes} node(s), {job.ranks} "
+          f"rank(s), limit {job.limit_seconds} s, time.walltime {job.budget_seconds} s; submit "
+          "it once, it resubmits itself until the run is done")
