@@ -87,7 +87,8 @@ def _add_sweep(sp):
 
 def _add_report(sp):
     sp.add_argument("runs", nargs="+", metavar="RUN_DIR", help="run folders; the first is the reference")
-    sp.add_argument("--out", required=True, help="folder for index.html, the PNGs and summary.csv")
+    sp.add_argument("--out", default=None, help="folder for index.html, the PNGs and the CSV files "
+                    "(default: RUN_DIR/report for one run, else a folder report/ beside the runs)")
 
 
 def _add_estimate(sp):
@@ -208,9 +209,10 @@ def cmd_sweep(args, comm=None):
 
 
 def cmd_report(args, comm=None):
-    from eddybox.solver.study.report import write_report
+    from eddybox.solver.study.report import default_report_folder, write_report
 
-    write_report(args.runs, args.out)
+    index = write_report(args.runs, args.out or default_report_folder(args.runs))
+    print(f"report written to {index}")
     return EXIT_DONE
 
 

@@ -16,6 +16,7 @@ import csv
 import datetime
 import html
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -658,6 +659,14 @@ def write_csv(runs, path):
                     r0, ge, ke = small_r(ps)
                     row += [repr(r0), repr(ge.mean), repr(ge.stderr), repr(ke.mean), repr(ke.stderr)]
             w.writerow(row)
+
+
+def default_report_folder(run_dirs) -> Path:
+    """RUN_DIR/report for one run; for several, report/ in the folder that holds them all."""
+    paths = [Path(d).resolve() for d in run_dirs]
+    if len(paths) == 1:
+        return paths[0] / "report"
+    return Path(os.path.commonpath([str(p.parent) for p in paths])) / "report"
 
 
 def write_report(run_dirs, out_dir) -> Path:
