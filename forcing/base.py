@@ -33,6 +33,10 @@ class Forcing:
     #: config keys this scheme accepts: name -> eddybox.solver.fields.Field (default, type,
     #: range, units, description); the config section `forcing` is built from them
     params: dict = {}
+    #: whether the forcing sets a fluid at rest moving (a forcing proportional to u, or one
+    #: that rescales the existing modes, does not); checked before a run whose particle sets
+    #: need the Kolmogorov time of the flow
+    moves_fluid_at_rest = False
 
     @staticmethod
     def check_config(section) -> None:

@@ -44,6 +44,8 @@ class OrnsteinUhlenbeckForcing(Forcing):
                         "L^2 T^-4", lo=0.0, lo_open=True),
     }
 
+    moves_fluid_at_rest = True
+
     @staticmethod
     def check_config(f):
         if f.variance is not None and f.dissipation is not None:
