@@ -39,7 +39,7 @@ from eddybox.solver.fluid.fft import available_cores
 from eddybox.solver.run import config as cfgmod
 from eddybox.solver.run.checkpoint import latest_checkpoint
 from eddybox.solver.run.config import differing_keys
-from eddybox.solver.run.run_folder import refuse_if_locked
+from eddybox.solver.run.run_folder import check_replaceable, refuse_if_locked
 
 STATUS_FILE = "sweep_status.json"
 CONSOLE_DIR = ".console"
@@ -243,6 +243,7 @@ def decide_action(run: SweepRun, recorded: dict | None) -> str:
             return "skip"
     if latest_checkpoint(str(folder / "checkpoints"), verify=False) is not None:
         return "resume"
+    check_replaceable(str(folder))  # what `run --overwrite` would refuse, refused before any run
     return "overwrite"
 
 
