@@ -299,10 +299,9 @@ def main(argv=None) -> int:
     code = EXIT_ERROR
     try:
         try:
-            stops.check()
             args = _parser().parse_args(argv)
             args.started = started
-            if args.command not in ("run", "demo"):
+            if args.command not in ("run", "demo"):  # (a run checks between its start-up steps)
                 stops.install("raise")  # short commands stop at once
                 stops.check()
             if not args.command:

@@ -21,7 +21,6 @@ import os
 import re
 import shutil
 import socket
-import stat
 import time
 
 from eddybox.solver import __version__
@@ -203,6 +202,9 @@ class RunLock:
             pass  # the lock holds without its description
         return self
 
+    def __del__(self):  # a Simulation dropped without close() must not keep the lock
+        self.release()
+
     def release(self):
         if self.fd is not None:
             try:
@@ -370,10 +372,3 @@ def folder_of(path) -> str:
             parent = os.path.dirname(parent)
         parent = os.path.dirname(parent)
     return parent
-
-
-def is_regular_file(path) -> bool:
-    try:
-        return stat.S_ISREG(os.lstat(path).st_mode)
-    except OSError:
-        return False
