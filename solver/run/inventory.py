@@ -113,7 +113,9 @@ def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
             sets = len(p.sets)
             groups = sets + (sets * (sets - 1) // 2 if pr.cross else 0)
             h = pr.bins * pr.wr_bins * 8
-            tmp["pair_histograms"] = h * (max(PAIR_CHUNKS, threads) + 2) + 2 * groups * h
+            # the kernel's chunks, their sum and the sample's histogram; per group the running
+            # sum, the record and (first sample) the zeros the file is created with
+            tmp["pair_histograms"] = h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
     return tmp
 
 
