@@ -156,7 +156,6 @@ def cmd_run(args, comm=None):
     out = str(args.out or cfg.output)
     sim = None
     try:
-        stops.check()
         sim = Simulation(cfg, output=out, overwrite=args.overwrite, restart=args.restart, comm=comm,
                          quiet=args.quiet, max_memory=limit, started=args.started)
         return sim.run()

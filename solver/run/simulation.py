@@ -90,6 +90,7 @@ class Simulation:
         c = config.root
         comm = self.comm
         # 1. checks that change nothing
+        self._check_stop()
         self._root_decides(lambda: run_folder.check_output(self.out, overwrite, restart is not None))
         ranks = 1 if comm is None else comm.Get_size()
         kind = "serial"
@@ -100,7 +101,7 @@ class Simulation:
         here = ranks_on_this_machine(comm)
         self._root_decides(lambda: check_memory(config, max_memory, ranks, kind, here,
                                                 fft.thread_count(here)))
-        stops.check()  # a stop signal takes effect between the phases of the start-up
+        self._check_stop()  # a stop signal takes effect between the phases of the start-up
 
         # 2. everything in memory
         self.layout = make_layout(c.grid.points, c.grid.length, c.parallel.layout, c.parallel.grid,
@@ -113,7 +114,7 @@ class Simulation:
         self.scheme = SCHEMES[c.time.scheme](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
         self.forcing = make_forcing(c.forcing, self.layout, c.seed)
-        stops.check()
+        self._check_stop()
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None
         self.restart_from = None
@@ -137,7 +138,7 @@ class Simulation:
             except InitialFieldError as exc:
                 raise ConfigError(f"fluid.initial.path: {exc}") from None
 
-        stops.check()
+        self._check_stop()
         st = c.stats
         self.hooks = [FluidHook(st.fluid.every, st.spectra.every, os.path.join(self.out, "fluid.h5")),
                       FieldsHook(st.fields.every, os.path.join(self.out, "fields"))]
@@ -166,13 +167,26 @@ class Simulation:
                 self.particles.seed(self)
             derived = scales.derived_block(config, self)  # collective: every rank takes part
 
-        stops.check()
+        self._check_stop()
         # 3. take the folder, 4. the log and the output files (a stop waits until both are done)
         self.lock = self._root_decides(lambda: self._take_folder(overwrite, restart_path))
         try:
             self._root_decides(lambda: self._open_outputs(resume, derived), failure="write")
         except DiskWriteError as exc:
             raise OutputWriteError(self.write_failure(exc)) from None
+
+    def _signal_on_any_rank(self):
+        """The stop signal received by this rank or any other (collective), or None."""
+        sig = stops.received()
+        if self.comm is not None and self.comm.Get_size() > 1:
+            sig = next((s for s in self.comm.allgather(sig) if s), None)
+        return sig
+
+    def _check_stop(self):
+        """Between the steps of the start-up: every rank stops together when one has a signal."""
+        sig = self._signal_on_any_rank()
+        if sig:
+            stops.check(sig)
 
     def _root_decides(self, fn, failure="usage"):
         """Run `fn` on rank 0 only and share its verdict, so that every rank stops together
@@ -507,7 +521,7 @@ class Simulation:
                                        f"t={self.t:.6g} (step {self.step})")
 
     def _stop_requested(self, walltime, step_times):
-        sig = self.layout.bcast(stops.received())
+        sig = self._signal_on_any_rank()
         if sig:
             return f"signal {sig}"
         if walltime is not None:

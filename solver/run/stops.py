@@ -98,11 +98,13 @@ def hold():
         _S.mode = "hold"
 
 
-def check():
-    """Raise StopRequested when a stop signal has arrived (between start-up phases)."""
-    if _S.received is not None and not _S.raised and _S.mode != "poll":
+def check(name=None):
+    """Raise StopRequested when a stop signal has arrived (between start-up phases); `name`:
+    a signal another MPI rank received."""
+    name = _S.received or name
+    if name is not None and not _S.raised and _S.mode != "poll":
         _S.raised = True
-        raise StopRequested(_S.received)
+        raise StopRequested(name)
 
 
 def start_polling() -> bool:
