@@ -5,9 +5,9 @@ written or removed); 3 numerical instability (last good checkpoint kept); 75 sto
 signal or the wall-time budget with a checkpoint to resume from (resume with --restart latest);
 76 stopped by a signal before there was a checkpoint (nothing to resume); 1 anything else.
 
-`main` catches SIGTERM, SIGINT and SIGUSR1 before anything heavy is imported
-(`eddybox.solver.run.stops`): only the standard library and `eddybox.solver.errors` are
-imported at module level here.
+SIGTERM, SIGINT and SIGUSR1 are caught before anything heavy is imported
+(`eddybox.solver.run.stops`): only the standard library, `eddybox.solver.errors` and
+`eddybox.solver.run.stops` are imported at module level here.
 """
 from __future__ import annotations
 
@@ -160,7 +160,7 @@ def cmd_run(args, comm=None):
                          quiet=args.quiet, max_memory=limit, started=args.started)
         return sim.run()
     except StopRequested as stop:
-        return _stopped(comm, stop, args, out, sim)
+        return _stopped(comm, stop, args, out)
     except NumericalInstability as exc:
         if sim is None or sim.is_root or comm is not None:
             print(f"eddybox: {exc}", file=sys.stderr, flush=True)
@@ -180,29 +180,25 @@ def cmd_run(args, comm=None):
             sim.close()
 
 
-def _stopped(comm, stop, args, out, sim):
-    """A stop signal before the time loop: 75 when the folder has a checkpoint to resume from,
-    76 when it has none."""
+def _stopped(comm, stop, args, out):
+    """A stop signal before the time loop: 75 when this run has a checkpoint to resume from (a
+    restart), 76 when it has none."""
     import glob
 
-    have = bool(glob.glob(os.path.join(out, "checkpoints", "checkpoint_*.h5")))
+    from eddybox.solver.run.run_folder import holds_run
+
     command = f"eddybox run {args.config} --out {out}"
-    if have:
+    resumable = args.restart is not None and \
+        bool(glob.glob(os.path.join(out, "checkpoints", "checkpoint_*.h5")))
+    if resumable:
         msg = (f"stopped by {stop.signal_name} before the run continued; resume with: {command} "
                "--restart latest")
     else:
-        from eddybox.solver.run.run_folder import holds_run
-
         again = " --overwrite" if os.path.isdir(out) and holds_run(out) else ""
         msg = (f"stopped by {stop.signal_name} before the first checkpoint: nothing to resume; "
                f"start again with: {command}{again}")
-    if sim is not None and sim.log is not None and sim.is_root:
-        try:
-            sim.log.write(msg)
-        except OSError:
-            pass
     _one_line(comm, msg)
-    return EXIT_STOPPED if have else EXIT_NOTHING_TO_RESUME
+    return EXIT_STOPPED if resumable else EXIT_NOTHING_TO_RESUME
 
 
 def cmd_check(args, comm=None):

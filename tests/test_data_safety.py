@@ -219,7 +219,7 @@ def test_non_finite_state_is_never_checkpointed(tmp_path):
 
 def test_walltime_is_the_budget_of_each_invocation(tmp_path):
     cfg = dict(FLUID, time={"scheme": "rk3", "cfl": 0.6, "end": 1e6, "max_dt": 0.002,
-                            "walltime": 1.5}, checkpoint={"every": None, "keep": 2})
+                            "walltime": 2.0}, checkpoint={"every": None, "keep": 2})
     path = _write(tmp_path, cfg)
     out = tmp_path / "w"
     steps = [0]

@@ -191,7 +191,8 @@ class Simulation:
     def _root_decides(self, fn, failure="usage"):
         """Run `fn` on rank 0 only and share its verdict, so that every rank stops together
         with one message: a refusal (ConfigError, CheckpointError, OutputError) raises
-        ConfigError on every rank, a failed write (OSError) DiskWriteError."""
+        ConfigError on every rank; an OSError does too, or DiskWriteError with
+        failure="write" (the output files are being written)."""
         verdict = result = None
         if self.is_root:
             try:
@@ -199,18 +200,13 @@ class Simulation:
             except (ConfigError, CheckpointError, OutputError) as exc:
                 verdict = ("usage", str(exc))
             except OSError as exc:
-                verdict = (failure if failure == "write" else "oserror",
-                           str(exc) if isinstance(exc, DiskWriteError) else
+                verdict = (failure, str(exc) if isinstance(exc, DiskWriteError) else
                            f"{getattr(exc, 'filename', None) or self.out}: {exc.strerror or exc}")
         if self.comm is not None and self.comm.Get_size() > 1:
             verdict = self.comm.bcast(verdict, root=0)
         if verdict is not None:
             kind, msg = verdict
-            if kind == "usage":
-                raise ConfigError(msg)
-            if kind == "oserror":
-                raise ConfigError(msg)
-            raise DiskWriteError(msg)
+            raise ConfigError(msg) if kind == "usage" else DiskWriteError(msg)
         return result
 
     def _check_particles_can_start(self):
