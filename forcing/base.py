@@ -36,6 +36,10 @@ class Forcing:
     #: extra per-sample series in fluid.h5 /series/: name -> (units, description); `series()`
     #: returns their values
     series_columns: dict = {}
+    #: whether the forcing sets a fluid at rest moving (a forcing proportional to u, or one
+    #: that rescales the existing modes, does not); checked before a run whose particle sets
+    #: need the Kolmogorov time of the flow
+    moves_fluid_at_rest = False
 
     @staticmethod
     def check_config(section) -> None:

@@ -89,6 +89,7 @@ class OrnsteinUhlenbeckForcing(Forcing):
     #: series this forcing adds to fluid.h5 /series/
     series_columns = {"forcing_variance": ("L^2 T^-4", "OU variance sigma^2 of each real and "
                                            "imaginary part of b_k in use at the sample")}
+    moves_fluid_at_rest = True
 
     @staticmethod
     def check_config(f):

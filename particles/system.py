@@ -54,6 +54,12 @@ class ParticleSet:
     def resolve(self, tau_eta: float, a_eta: float):
         """Fix tau_p (from St and the measured tau_eta) and, for physical sets, gravity."""
         if self.tau_p is None:
+            if not np.isfinite(tau_eta):
+                from eddybox.solver.errors import ConfigError
+
+                raise ConfigError(f"particles.sets[{self.index}].stokes: the flow has no "
+                                  "dissipation at the release (tau_eta is infinite), so the "
+                                  "Stokes number gives no response time; give tau_p instead")
             self.tau_p = float(self.stokes) * tau_eta
         elif self.stokes is None:
             self.stokes = self.tau_p / tau_eta if tau_eta > 0 else float("nan")

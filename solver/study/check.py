@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 from eddybox.solver.run import scales
-from eddybox.solver.run.inventory import human_bytes, predicted_inventory
+from eddybox.solver.run.inventory import human_bytes, machine_memory, memory_needed, predicted_inventory
 
 
 def check_lines(cfg) -> list[str]:
@@ -51,6 +51,10 @@ def check_lines(cfg) -> list[str]:
     n3 = cfg.grid.points ** 3
     out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
     out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
+    need = memory_needed(cfg)
+    peak = sum(need.values())
+    out += [f"  at the peak, with the largest temporary arrays and the process itself: "
+            f"{human_bytes(peak)} of {human_bytes(machine_memory())} on this machine"]
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
     return out
 

@@ -30,6 +30,8 @@ from eddybox.solver.study.calibration import STAGES, calibrate, load_calibration
 #: assumptions, override with --network-bandwidth / --network-latency)
 DEFAULT_BANDWIDTH = 2.0e9
 DEFAULT_LATENCY = 2.0e-6
+#: the largest rank count an estimate is made for
+MAX_RANKS = 1 << 24
 
 
 def transpose_bytes_per_transform(n, ranks, layout="auto"):
@@ -67,8 +69,15 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
 
     if n < 4 or n % 2:
         raise ConfigError(f"--points: expected an even integer >= 4, got {n}")
-    if ranks < 1:
-        raise ConfigError(f"--ranks: expected a positive integer, got {ranks}")
+    if not 1 <= ranks <= MAX_RANKS:
+        raise ConfigError(f"--ranks: expected an integer from 1 to {MAX_RANKS}, got {ranks}")
+    if particles is not None and not 1 <= particles <= 10**15:
+        raise ConfigError(f"--particles: expected an integer from 1 to 1e15, got {particles}")
+    for option, value, lo_open in (("--network-bandwidth", bandwidth, True),
+                                   ("--network-latency", latency, False)):
+        if value is not None and not (math.isfinite(value) and (value > 0 if lo_open else value >= 0)):
+            raise ConfigError(f"{option}: expected a finite number {'>' if lo_open else '>='} 0, "
+                              f"got {value}")
     layout = "serial"
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import resolve_grid
@@ -93,8 +102,8 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
     inv = predicted_inventory(cfg, ranks, layout, particles_per_rank=-(-total_particles // ranks)
                               if sets else None)
     cal = cal or load_calibration() or calibrate()
-    bw = bandwidth or DEFAULT_BANDWIDTH
-    lat = latency or DEFAULT_LATENCY
+    bw = DEFAULT_BANDWIDTH if bandwidth is None else bandwidth
+    lat = DEFAULT_LATENCY if latency is None else latency
     # steps to the end time from the CFL condition at the predicted u'
     pred = scales.predicted(cfg)
     u = pred.get("u_rms_estimate")

@@ -318,7 +318,10 @@ def load_run(run_dir, name=None) -> Run:
     if not (math.isfinite(eta) and math.isfinite(integral)):
         eta = float(series["eta"][-1]) if series["eta"].size else math.nan
         integral = float(series["integral_scale"][-1]) if series["integral_scale"].size else math.nan
-    pairs = read_pair_stats(path, eta, integral) if math.isfinite(eta) else []
+    try:
+        pairs = read_pair_stats(path, eta, integral) if math.isfinite(eta) else []
+    except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError) as exc:
+        raise ConfigError(f"{path / 'pairs.h5'}: not a readable pairs file of eddybox ({exc})") from None
     return Run(name or path.name, path, config, series, est, read_spectra(path), pairs)
 
 
