@@ -57,8 +57,12 @@ def _parser():
         sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                         help="override a config key (value parsed as YAML); repeatable")
 
-    r = sub.add_parser("run", help="run a config")
-    with_config(r)
+    r = sub.add_parser("run", help="run a config, or continue a run folder")
+    r.add_argument("config", nargs="?", help="YAML config file (leave out to continue the run "
+                   "folder given by --out with --restart latest: its config.yaml is used)")
+    r.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config key (value parsed as YAML); repeatable; on a restart "
+                        "only the keys that may change may differ from the run's")
     r.add_argument("--out", help="output folder (default: the config's output)")
     r.add_argument("--restart", metavar="latest|FILE", help="continue from a checkpoint")
     r.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
@@ -171,6 +175,13 @@ def cmd_run(args, comm=None):
     from eddybox.solver.run.simulation import Simulation
 
     limit = _max_memory(args)
+    if args.config is None:
+        if args.restart is None or not args.out:
+            raise ConfigError("usage: run needs a CONFIG file, or a run folder to continue with "
+                              "--out RUN_DIR --restart latest")
+        args.config = os.path.join(args.out, "config.yaml")
+        if not os.path.isfile(args.config):
+            raise ConfigError(f"--out {args.out}: no config.yaml; not a run folder to continue")
     cfg = cfgmod.load(args.config, args.set)
     out = str(args.out or cfg.output)
     sim = None
@@ -210,8 +221,8 @@ def _stopped(comm, stop, args, out):
     resumable = args.restart is not None and \
         bool(glob.glob(os.path.join(out, "checkpoints", "checkpoint_*.h5")))
     if resumable:
-        msg = (f"stopped by {stop.signal_name} before the run continued; resume with: {command} "
-               "--restart latest")
+        msg = (f"stopped by {stop.signal_name} before the run continued; resume with: "
+               f"eddybox run --out {out} --restart latest")
     else:
         again = " --overwrite" if os.path.isdir(out) and holds_run(out) else ""
         msg = (f"stopped by {stop.signal_name} before the first checkpoint: nothing to resume; "

@@ -436,10 +436,14 @@ def differing_keys(a: dict, b: dict) -> list[str]:
 
 
 def validate(raw, source="<dict>") -> Config:
+    """The validated Config of a raw mapping. A `derived:` block (a run folder's config.yaml
+    carries one) is ignored: it describes the run it was written by and is recomputed."""
     if raw is None:
         raw = {}
     if not isinstance(raw, dict):
         raise ConfigError(f"{source}: the top level must be a mapping of keys, got {type(raw).__name__}")
+    if "derived" in raw:
+        raw = {k: v for k, v in raw.items() if k != "derived"}
     root = RunConfig.parse(raw, "")
     _cross_checks(root)
     return Config(root, source)

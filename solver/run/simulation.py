@@ -255,19 +255,32 @@ class Simulation:
                     fh.write(self.config.to_yaml(derived))
             except OSError as exc:
                 raise write_error(os.path.join(self.out, "config.yaml"), exc) from None
+        else:
+            # a restart may change how long the run goes and how often it saves: the folder's
+            # config.yaml says what it runs with now, so that `--out DIR --restart latest`
+            # alone continues it with these settings
+            self._rewrite_config_yaml()
 
     def _update_derived(self):
         """Rewrite the forcing's entries of the derived block in config.yaml (a calibration
         has ended), atomically: a reader sees the old file or the new one."""
+        self._rewrite_config_yaml(self.forcing.derived())
+
+    def _rewrite_config_yaml(self, derived_updates=None):
+        """config.yaml with this invocation's settings and the old derived block (updated),
+        replaced atomically (rank 0)."""
         if not self.is_root:
             return
         path = os.path.join(self.out, "config.yaml")
         try:
             with open(path) as fh:
-                data = yaml.safe_load(fh) or {}
+                old = yaml.safe_load(fh) or {}
         except (OSError, yaml.YAMLError):
             return  # the run's own copy is gone or damaged: nothing to update
-        data.setdefault("derived", {}).update(self.forcing.derived())
+        derived = old.get("derived") if isinstance(old, dict) else None
+        derived = dict(derived) if isinstance(derived, dict) else {}
+        derived.update(derived_updates or {})
+        data = yaml.safe_load(self.config.to_yaml(derived))
         tmp = path + f".tmp{os.getpid()}"
         try:
             with open(tmp, "w") as fh:
@@ -482,7 +495,8 @@ class Simulation:
                     self.checkpoint_schedule.done(self.t)
                 step_times.append(_time.monotonic() - t0)
                 progress.update()
-                stop = self._stop_requested(walltime, step_times)
+                # a run that has just reached its end is done, whatever stop is pending
+                stop = None if self._finished() else self._stop_requested(walltime, step_times)
                 if stop:
                     path = self.write_checkpoint()
                     progress.close()
@@ -515,7 +529,9 @@ class Simulation:
             self.close()
 
     def resume_command(self) -> str:
-        return f"eddybox run {self.config.source} --out {self.out} --restart latest"
+        """The command that continues this run with its settings as they are now: the run
+        folder's config.yaml holds them, overrides included."""
+        return f"eddybox run --out {self.out} --restart latest"
 
     def last_good_checkpoint(self):
         """The newest checkpoint of the output folder that verifies (rank 0), or None."""

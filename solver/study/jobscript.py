@@ -140,8 +140,13 @@ def job_script(job: Job, kind: str, script_path: str, python=None) -> str:
 #
 # The chain: each job runs eddybox with time.walltime below the job's limit; a job stopped by
 # that budget (exit 75, a checkpoint written) submits this script again, and the next job
-# continues from the newest checkpoint. Exit 0 ends the chain; any other code stops it.
+# continues from the newest checkpoint. Exit 0 ends the chain; any other code stops it, and
+# so does a signal to the job.
 set -u
+# a signal to the job itself (scancel, qdel, the queue's own limit) stops the chain: eddybox
+# checkpoints and exits 75, but the job does not submit itself again
+cancelled=""
+trap 'cancelled=1' TERM INT USR1
 SCRIPT={q(os.path.abspath(script_path))}
 CONFIG={q(job.config)}
 OUT={q(job.out)}
@@ -165,7 +170,9 @@ fi
     --set time.walltime="$BUDGET" --quiet
 code=$?
 echo "eddybox exited with $code"
-if [ "$code" -eq 75 ]; then
+if [ -n "$cancelled" ]; then
+    echo "the job was signalled: not submitting the next one (submit $SCRIPT to continue)"
+elif [ "$code" -eq 75 ]; then
     submit
 fi
 exit "$code"

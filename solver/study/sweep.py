@@ -256,13 +256,20 @@ def threads_per_run() -> int:
 
 
 def child_command(config_path, run: SweepRun) -> list[str]:
-    cmd = [sys.executable, "-m", "eddybox.solver.cli", "run", os.path.abspath(config_path)]
+    """`eddybox run` for one run: its config and overrides; an interrupted run continues from
+    its folder's own config.yaml, with the keys a restart may change set to the sweep's."""
+    cli = [sys.executable, "-m", "eddybox.solver.cli", "run"]
+    if run.action == "resume":
+        cmd = cli + ["--out", str(run.folder), "--quiet", "--restart", "latest"]
+        for key in cfgmod.restart_mutable_keys():
+            if key not in ("name", "output"):
+                cmd += ["--set", f"{key}={json.dumps(run.config.get(key))}"]
+        return cmd
+    cmd = cli + [os.path.abspath(config_path)]
     for pair in run.overrides:
         cmd += ["--set", pair]
     cmd += ["--out", str(run.folder), "--quiet"]
-    if run.action == "resume":
-        cmd += ["--restart", "latest"]
-    elif run.action == "overwrite":
+    if run.action == "overwrite":
         cmd += ["--overwrite"]
     return cmd
 
