@@ -203,7 +203,8 @@ SCHEMA = {
         "viscosity": Num(0.01, "kinematic viscosity nu", lo=0.0, lo_open=True),
         "initial": "initial",  # dynamic, by kind
         "frozen": Bool(False, "keep the velocity field fixed"),
-        "dealias": Choice("two-thirds", ("two-thirds", "phase-shift"), "dealiasing method"),
+        "dealias": Choice("two-thirds", ("two-thirds", "phase-shift", "stage-shift"),
+                          "dealiasing method"),
     },
     "time": {
         "scheme": Choice("rk4", tuple(SCHEMES), "time scheme"),
@@ -362,6 +363,12 @@ _DYNAMIC = {
 def _cross_checks(c):
     n = c["grid"]["points"]
     scheme = SCHEMES[c["time"]["scheme"]]
+    if c["fluid"]["dealias"] == "stage-shift" and not scheme.stage_shifts:
+        able = ", ".join(k for k, v in SCHEMES.items() if v.stage_shifts)
+        raise ConfigError(f"fluid.dealias: 'stage-shift' cancels aliasing across the stages of "
+                          f"a step, which time.scheme {scheme.name!r} cannot do (no stage shifts "
+                          f"make its weights cancel); use time.scheme {able}, or fluid.dealias "
+                          "two-thirds or phase-shift")
     if c["time"]["cfl"] > scheme.cfl_limit:
         raise ConfigError(f"time.cfl: {c['time']['cfl']} is above the stability limit "
                           f"{scheme.cfl_limit} of scheme {scheme.name!r}; allowed: 0 < cfl <= "

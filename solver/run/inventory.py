@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from eddybox.solver.fluid.navier_stokes import DEALIASING
 from eddybox.solver.fluid.timestepping import SCHEMES
 
 COMPLEX, REAL = 16, 8
@@ -33,8 +34,8 @@ def predicted_inventory(cfg: dict, ranks: int = 1, layout: str = "serial",
            "fft_scratch": spec * COMPLEX,
            "physical_velocity": 3 * phys * REAL,
            "physical_vorticity": 3 * phys * REAL}
-    if cfg["fluid"]["dealias"] == "phase-shift":
-        inv["phase_shift_copy"] = 3 * spec * COMPLEX
+    if DEALIASING[cfg["fluid"]["dealias"]].extra_arrays:
+        inv["phase_shift_copy"] = DEALIASING[cfg["fluid"]["dealias"]].extra_arrays * spec * COMPLEX
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import transpose_buffer_points
 

@@ -75,7 +75,7 @@ class Simulation:
         self.nu = c["fluid"]["viscosity"]
         self.dx = c["grid"]["length"] / c["grid"]["points"]
         self.frozen = c["fluid"]["frozen"]
-        self.nl = NonlinearTerm(self.layout, c["fluid"]["dealias"])
+        self.nl = NonlinearTerm(self.layout, c["fluid"]["dealias"], seed=c["seed"])
         self.scheme = SCHEMES[c["time"]["scheme"]](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
         self.forcing = make_forcing(c["forcing"], self.layout, c["seed"])
@@ -108,12 +108,12 @@ class Simulation:
         self.log = RunLog(os.path.join(self.out, "log.txt") if self.is_root else None, quiet or not self.is_root,
                           stream=stream)
         self.log.write(f"eddybox run: {config.summary()}")
-        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]])
+        bound = spectral_cfl_bound(SCHEMES[c["time"]["scheme"]], c["fluid"]["dealias"])
         if c["time"]["cfl"] > bound:
             self.log.write(f"warning: time.cfl = {c['time']['cfl']} is above {bound:.2f}, the "
                            "stability bound for pseudo-spectral advection; the run may become unstable")
-        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
-                       f"{c['fluid']['dealias']}; output {self.out}")
+        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; "
+                       f"{self.nl.summary()}; output {self.out}")
 
         st = c["stats"]
         self.hooks = [FluidHook(st["fluid"]["every"], st["spectra"]["every"], os.path.join(self.out, "fluid.h5")),

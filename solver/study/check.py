@@ -32,11 +32,11 @@ def check_lines(cfg) -> list[str]:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
     from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 
-    bound = spectral_cfl_bound(SCHEMES[d["time"]["scheme"]])
+    bound = spectral_cfl_bound(SCHEMES[d["time"]["scheme"]], d["fluid"]["dealias"])
     if d["time"]["cfl"] > bound:
         warnings.append(f"time.cfl = {d['time']['cfl']} is above {bound:.2f}, the stability bound of "
-                        f"{d['time']['scheme']} for pseudo-spectral advection; the run may become "
-                        "unstable (exit code 3)")
+                        f"{d['time']['scheme']} with {d['fluid']['dealias']} dealiasing for "
+                        "pseudo-spectral advection; the run may become unstable (exit code 3)")
     from eddybox.particles.physical import particle_lines
 
     plines, pwarn = particle_lines(cfg, p)
