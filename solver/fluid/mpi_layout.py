@@ -268,13 +268,17 @@ def transpose_buffer_points(n: int, ranks: int, layout: str = "auto", grid=None,
 
 
 def transpose_bytes_sent(n: int, ranks: int, layout: str = "auto", grid=None,
-                         rank: int | None = None, direction: str = "forward") -> int:
-    """Bytes a rank sends per transform (rank None: the largest over the ranks)."""
+                         rank: int | None = None, direction: str = "forward",
+                         keep: int | None = None) -> int:
+    """Bytes a rank sends per transform (rank None: the largest over the ranks); with `keep`,
+    per truncated transform of a field band-limited to |k_y|, |k_z| <= keep."""
     kind, pg = resolve_grid(n, ranks, layout, grid)
     if kind == "serial":
         return 0
+    if keep is not None and 2 * keep + 1 >= n:
+        keep = None  # nothing to prune (band_limited returns the full transforms)
     ranks_ = range(ranks) if rank is None else [rank]
-    return max(Decomposition(n, pg, r).bytes_sent(direction) for r in ranks_)
+    return max(Decomposition(n, pg, r).bytes_sent(direction, keep) for r in ranks_)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -27,7 +27,7 @@ def check_lines(cfg) -> list[str]:
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
                             "resolved; use more grid.points or a larger fluid.viscosity "
-                            f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * d['grid']['length'] / (2 * math.pi))})")
+                            f"(k_max eta >= 1 needs N >= {_points_for(d, 1.0 / p['eta'])})")
     else:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
     from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
@@ -47,9 +47,37 @@ def check_lines(cfg) -> list[str]:
     n3 = d["grid"]["points"] ** 3
     out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
     out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
+    out += cost_lines(d, total)
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
     return out
 
 
+def _points_for(d, kmax) -> int:
+    """The smallest N whose dealiased k_max reaches `kmax` with the config's dealiasing."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    k0 = 2 * math.pi / d["grid"]["length"]
+    return math.ceil(kmax / (k0 * DEALIASING[d["fluid"]["dealias"]].kmax_index(1)))
+
+
 def print_check(cfg):
     print("\n".join(check_lines(cfg)))
+
+
+def cost_lines(d, memory_bytes) -> list[str]:
+    """What a step costs with the chosen dealiasing: 3-D transforms and their pruned share, and
+    the memory per resolved (kept) mode."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+    from eddybox.solver.study.calibration import STAGES
+    from eddybox.solver.study.estimate import pruned_share
+
+    n = d["grid"]["points"]
+    method = DEALIASING[d["fluid"]["dealias"]]
+    evaluations, share = method.evaluations, pruned_share(method.name, n)
+    stages = STAGES[d["time"]["scheme"]]
+    kept = method.kept_modes(n)
+    return ["", f"cost per step: {stages} stages x {evaluations} product(s) x 9 = "
+                f"{stages * evaluations * 9} real 3-D transforms of {n}^3, pruned to {share:.0%} of "
+                f"the full transform work ({method.summary})",
+            f"resolved modes: {kept} (k_max = {method.kmax_index(n):.4g} x 2 pi/L), "
+            f"{memory_bytes / kept:.0f} bytes per resolved mode"]
