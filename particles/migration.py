@@ -148,18 +148,17 @@ def ghost_block_bytes(n: int, proc_grid, components: int, width: int) -> np.ndar
     return 8 * components * n * points
 
 
-def ghost_field_bytes(cfg, ranks, layout) -> int:
-    """Bytes of the ghosted 3-component velocity block per rank (largest over the ranks),
-    including its exchange buffers: what `GhostField(layout, blockmap, 3,
-    ghost_width(max order))` allocates. `layout` is 'slab' or 'pencil' (the grid from
-    parallel.grid when it fits, else the automatic one)."""
+def _ghost_grid(cfg, ranks, layout):
+    """(N, process grid, ghost width) of a config's ghosted velocity block, or None without
+    particles or on one rank. `layout` is 'slab' or 'pencil' (the grid from parallel.grid
+    when it fits, else the automatic one)."""
     from eddybox.solver.errors import ConfigError
     from eddybox.solver.fluid.mpi_layout import resolve_grid
 
     n = cfg["grid"]["points"]
     orders = [s["interpolation"] or cfg["particles"]["interpolation"] for s in cfg["particles"]["sets"]]
     if not orders or ranks <= 1:
-        return 0
+        return None
     grid = (cfg.get("parallel") or {}).get("grid")
     if layout != "pencil" or grid is None or math.prod(grid) != ranks:
         grid = None
@@ -171,7 +170,31 @@ def ghost_field_bytes(cfg, ranks, layout) -> int:
             p1 -= 1
         pg = (ranks, 1) if layout == "slab" else (p1, ranks // p1)
         pg = tuple(min(g, n) for g in pg)  # no empty blocks in the geometry
-    return int(ghost_block_bytes(n, pg, 3, ghost_width(max(orders))).max())
+    return n, pg, ghost_width(max(orders))
+
+
+def ghost_field_bytes(cfg, ranks, layout) -> int:
+    """Bytes of the ghosted 3-component velocity block per rank (largest over the ranks),
+    including its exchange buffers: what `GhostField(layout, blockmap, 3,
+    ghost_width(max order))` allocates."""
+    geo = _ghost_grid(cfg, ranks, layout)
+    return 0 if geo is None else int(ghost_block_bytes(geo[0], geo[1], 3, geo[2]).max())
+
+
+def ghost_block_extents(cfg, ranks, layout):
+    """(x, y, z) extents of the largest ghosted block over the ranks (N on an axis held
+    whole), or None on one rank."""
+    from eddybox.solver.fluid.mpi_layout import split_range
+
+    geo = _ghost_grid(cfg, ranks, layout)
+    if geo is None:
+        return None
+    n, pg, w = geo
+    sizes = []
+    for p in pg:
+        counts, starts = split_range(n, int(p))
+        sizes.append(_axis_counts([(a, a + c) for a, c in zip(starts, counts)], n, w)[0])
+    return int(sizes[0].max()), int(sizes[1].max()), n
 
 
 # ---------------------------------------------------------------------------------------------

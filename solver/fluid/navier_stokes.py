@@ -165,6 +165,13 @@ class NonlinearTerm:
         return f"dealias {self.dealias} ({self.method.summary})" + \
             (", pruned transforms" if self.pruned else "")
 
+    def bytes_moved_per_transform(self, direction: str = "forward") -> int:
+        """Bytes this rank sends in one 3-D transform of the product (truncated transposes
+        when pruned; 0 on one process)."""
+        owner = getattr(self._fwd, "__self__", self.layout)
+        moved = getattr(owner, "bytes_moved_per_transform", None)
+        return moved(direction) if moved else 0
+
     def kmax(self) -> float:
         """Largest wavenumber kept after dealiasing (for k_max eta)."""
         return self.layout.k0 * self.method.kmax_index(self.layout.n)

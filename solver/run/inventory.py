@@ -42,13 +42,18 @@ def predicted_inventory(cfg: dict, ranks: int = 1, layout: str = "serial",
         inv["transpose_buffers"] = transpose_buffer_points(n, ranks, layout) * COMPLEX
     sets = cfg["particles"]["sets"]
     if sets:
-        from eddybox.particles.system import bytes_per_particle, ghost_field_bytes
+        from eddybox.particles.system import (
+            bytes_per_particle,
+            ghost_field_bytes,
+            interpolation_copy_bytes,
+        )
 
         count = sum(s["count"] for s in sets) if particles_per_rank is None else particles_per_rank
         inv["particles"] = bytes_per_particle() * count
         g = ghost_field_bytes(cfg, ranks, layout)
         if g:
             inv["ghosted_velocity"] = g
+        inv["interpolation_copy"] = interpolation_copy_bytes(cfg, ranks, layout)
     return inv
 
 
