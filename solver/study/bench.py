@@ -8,7 +8,9 @@ Sections (each a function returning a dict of named figures):
   resolution the time to advance one large-eddy turnover at k_max eta = 1.5 and eps = 0.1 with
              each dealiasing option at the N it needs, against the 2/3 rule with full
              transforms (the default before pruning), and memory per resolved mode
-  particles  order-8 interpolation of three components (eddybox.solver.study.bench_interp)
+  particles  order-8 interpolation of three components (eddybox.solver.study.bench_interp):
+             today's kernel and the interleaved copies; and one step of 10^6 particles
+             (order 8, tau_p = 0.05) against the 128^3 fluid step of the same run
   pairs      pair statistics against a cKDTree + numpy pipeline (eddybox.solver.study.bench_pairs)
   scaling    strong scaling over MPI ranks and bytes moved by the transposes
   estimate   accuracy of `eddybox estimate` against measured runs
@@ -210,7 +212,46 @@ def bench_resolution(quick=False, kmax_eta=1.5, eps=0.1):
 def bench_particles(quick=False):
     from eddybox.solver.study.bench_interp import bench_interpolation
 
-    return bench_interpolation(n_particles=2 * 10**5 if quick else 10**6, n=64 if quick else 128)
+    n, count = (64, 2 * 10**5) if quick else (128, 10**6)
+    out = bench_interpolation(n_particles=count, n=n)
+    out.update(particle_step_point(n, count))
+    return out
+
+
+def particle_step_point(n, count, order=8, tau_p=0.05):
+    """Seconds per step of the particles (inverse transform and interleaved copy of the
+    velocity, integrator, interpolations, and the re-sort by cell once in SORT_EVERY steps)
+    against the fluid step of the same run, measured step by step in turn over SORT_EVERY
+    steps per particle scheme: the run loop's (multistep ETD2, one interpolation per step)
+    and ETD2RK (two)."""
+    from eddybox.particles import integrator
+    from eddybox.particles.system import SCHEME, SORT_EVERY
+
+    sim = benchmark_simulation(n, particles=count, order=order, tau_p=tau_p)
+    sim.advance()  # compile, warm caches, the first (ETD2RK) particle step
+    parts = sim.particles
+    fluid, per_scheme = [], {}
+    for name in (SCHEME, "etd2rk"):
+        parts.scheme = integrator.PARTICLE_SCHEMES[name]()
+        times = per_scheme[name] = []
+        for _ in range(SORT_EVERY):  # one re-sort in every SORT_EVERY steps
+            t0 = time.perf_counter()
+            dt = sim.scheme.step(sim.uh, sim.forcing, sim._choose_dt, sim)
+            sim.forcing.end_step(sim, dt)
+            fluid.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            parts.advance(sim, dt)
+            times.append(time.perf_counter() - t0)
+            sim.t += dt
+            sim.step += 1
+    parts.scheme = integrator.PARTICLE_SCHEMES[SCHEME]()
+    t_fluid = float(np.median(fluid))
+    one, two = float(np.mean(per_scheme[SCHEME])), float(np.mean(per_scheme["etd2rk"]))
+    return {"particle_step_particles": count, "particle_step_grid": n,
+            "fluid_step_seconds": t_fluid, "particle_step_seconds": one,
+            "particle_step_seconds_two_interpolations": two,
+            "particle_step_over_fluid_step": one / t_fluid,
+            "particle_step_over_fluid_step_two_interpolations": two / t_fluid}
 
 
 @register("pairs")

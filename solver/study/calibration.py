@@ -31,9 +31,10 @@ def best_time(fn, repeats):
 
 
 def benchmark_simulation(n, scheme="rk4", out=None, threads=None, dealias="two-thirds",
-                         viscosity=0.01, pruned=True):
+                         viscosity=0.01, pruned=True, particles=0, order=8, tau_p=0.05):
     """A forced n^3 simulation for timing (no output but its folder, spectrum initial field).
-    pruned=False gives the nonlinear term today's full transforms, for side-by-side figures."""
+    pruned=False gives the nonlinear term today's full transforms, for side-by-side figures;
+    `particles` > 0 adds one set of that many, released at t = 0."""
     import tempfile
 
     from eddybox.solver.fluid.navier_stokes import NonlinearTerm
@@ -47,6 +48,9 @@ def benchmark_simulation(n, scheme="rk4", out=None, threads=None, dealias="two-t
                     "time": {"scheme": scheme, "cfl": 0.5, "end": 1e9},
                     "forcing": {"kind": "ou", "band": 2.0, "timescale": 1.0, "dissipation": 0.1},
                     "stats": {"fluid": {"every": None}, "spectra": {"every": None}},
+                    "particles": {"release": 0.0, "interpolation": order,
+                                  "sets": [{"name": "p", "tau_p": tau_p, "count": particles}]
+                                  if particles else []},
                     "output": out})
     sim = Simulation(cfg, overwrite=True, quiet=True)
     if not pruned:
