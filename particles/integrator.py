@@ -102,7 +102,10 @@ def etd_coefficients(tau_p, h):
 @njit(cache=True)
 def wrap_periodic(x, L):
     """Map a coordinate into [0, L). fmod is exact; the second test catches the case where
-    a tiny negative remainder plus L rounds to exactly L."""
+    a tiny negative remainder plus L rounds to exactly L. A coordinate already in the box
+    (most of them, every step) skips the division."""
+    if 0.0 <= x < L:
+        return x + 0.0  # turns -0.0 into +0.0
     r = np.fmod(x, L)
     if r < 0.0:
         r += L
@@ -144,14 +147,19 @@ def etd_correct(x, v, u_n, u_star, tau_p, g, h, L):
     x_{n+1} = x_n + h (u_n + u_star)/2, v_{n+1} = u_star. Positions wrapped into [0, L).
     """
     E, q1, q2, q3 = etd_coefficients(tau_p, h)
-    one_minus_E = 1.0 - E
     for i in prange(x.shape[0]):
         for a in range(3):
-            c = u_n[i, a] + g[a] * tau_p
-            d = (u_star[i, a] - u_n[i, a]) / h
-            v_old = v[i, a]
-            v[i, a] = v_old * E + c * one_minus_E + d * q2
-            x[i, a] = wrap_periodic(x[i, a] + v_old * q1 + c * q2 + d * q3, L)
+            _linear_seen(x, v, i, a, u_n[i, a] + g[a] * tau_p, (u_star[i, a] - u_n[i, a]) / h,
+                         E, q1, q2, q3, L)
+
+
+@njit(cache=True, inline="always")
+def _linear_seen(x, v, i, a, c, d, E, q1, q2, q3, L):
+    """The exact step of particle i, component a, for a seen velocity u + g tau_p = c + d t
+    linear in time over the step (module docstring)."""
+    v_old = v[i, a]
+    v[i, a] = v_old * E + c * (1.0 - E) + d * q2
+    x[i, a] = wrap_periodic(x[i, a] + v_old * q1 + c * q2 + d * q3, L)
 
 
 @njit(parallel=True, cache=True)
@@ -167,32 +175,15 @@ def etd_multistep(x, v, u_n, u_prev, tau_p, g, h, h_prev, L):
     u_n, u_prev: fluid velocity interpolated at (x_n, t_n) and (x_{n-1}, t_{n-1}); h_prev the
     previous step. Positions wrapped into [0, L)."""
     E, q1, q2, q3 = etd_coefficients(tau_p, h)
-    one_minus_E = 1.0 - E
     for i in prange(x.shape[0]):
         for a in range(3):
-            c = u_n[i, a] + g[a] * tau_p
-            d = (u_n[i, a] - u_prev[i, a]) / h_prev
-            v_old = v[i, a]
-            v[i, a] = v_old * E + c * one_minus_E + d * q2
-            x[i, a] = wrap_periodic(x[i, a] + v_old * q1 + c * q2 + d * q3, L)
+            _linear_seen(x, v, i, a, u_n[i, a] + g[a] * tau_p, (u_n[i, a] - u_prev[i, a]) / h_prev,
+                         E, q1, q2, q3, L)
 
 
 # ---------------------------------------------------------------------------------------------
-# The schemes, as the run loop uses them
+# The schemes, as the run loop uses them (registry PARTICLE_SCHEMES at the end)
 # ---------------------------------------------------------------------------------------------
-PARTICLE_SCHEMES: dict[str, type] = {}
-
-
-def register(name: str):
-    def deco(cls):
-        cls.name = name
-        PARTICLE_SCHEMES[name] = cls
-        return cls
-
-    return deco
-
-
-@register("etd2rk")
 class ETD2RK:
     """Two-stage ETD2RK (Cox & Matthews 2002; module docstring): a predictor with u_n, the
     fluid velocity interpolated at the predicted position, a corrector, then u at the new
@@ -201,6 +192,7 @@ class ETD2RK:
     `step(s, interpolate, h, L)` advances a particle set s (arrays x, v, u_seen, tau_p,
     gravity) over h, with interpolate(positions, out) of the field at the end of the step."""
 
+    name = "etd2rk"
     interpolations_per_step = 2
 
     def step(self, s, interpolate, h, L):
@@ -211,13 +203,13 @@ class ETD2RK:
         interpolate(s.x, s.u_seen)
 
 
-@register("etd2")
 class ETD2Multistep:
     """Multistep ETD2 (Cox & Matthews 2002, eq. 6; :func:`etd_multistep`): one interpolation
     per step. Keeps u_prev (the seen velocity of the step before, per particle) and h_prev
     (per set) as history; a set without history (just released, or restarted from a
     checkpoint that has none) takes one ETD2RK step first."""
 
+    name = "etd2"
     interpolations_per_step = 1
 
     def step(self, s, interpolate, h, L):
@@ -230,3 +222,7 @@ class ETD2Multistep:
             interpolate(s.x, s.u_seen)
         s.history = True
         s.h_prev = h
+
+
+#: the particle schemes by name (the run loop uses system.SCHEME)
+PARTICLE_SCHEMES = {cls.name: cls for cls in (ETD2RK, ETD2Multistep)}

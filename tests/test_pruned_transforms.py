@@ -1,24 +1,14 @@
 """Pruned transforms and truncated transposes (`band_limited`): internal, so they must give
-today's results to round-off on every layout. Serial here; slab and pencil under mpiexec
-through tests/mpi_scripts/band_check.py. References: numpy.fft on the global array and the
-layouts' full transforms."""
-import os
-
+today's results to round-off on every layout. Serial here; slab and pencil (uneven blocks
+included) under mpiexec in tests/test_mpi_layout.py. References: numpy.fft and the layouts'
+full transforms."""
 import numpy as np
 import pytest
 
 from eddybox.solver.fluid import fft
 from eddybox.solver.fluid.navier_stokes import DEALIASING, NonlinearTerm
 from eddybox.solver.fluid.serial_layout import SerialLayout
-from tests.mpi_helpers import cached_results
 
-SCRIPT = os.path.join(os.path.dirname(__file__), "mpi_scripts", "band_check.py")
-CASES = {
-    # 1x2 at N = 16 splits 9 k_z planes 5 + 4 (uneven)
-    2: ["slab:16", "pencil:1x2:16"],
-    # uneven: slab 18 over 4 (x and k_y 5,5,4,4); 2x2 at 20 (k_z 6 + 5); 1x4 at 18
-    4: ["slab:18", "pencil:2x2:20", "pencil:1x4:18"],
-}
 BANDS = ("two-thirds", "stage-shift")
 
 
@@ -81,37 +71,3 @@ def test_nonlinear_term_pruned_equals_full(dealias):
         nl_f.evaluate(b, b, 0.0, 1.0, stage)
         assert np.abs(a - b).max() < 1e-12 * np.abs(b).max()
         assert nl_p.umax == pytest.approx(nl_f.umax, rel=1e-12)
-
-
-# ---------------------------------------------------------------------------------------------
-# slab and pencil under MPI
-# ---------------------------------------------------------------------------------------------
-@pytest.fixture(scope="module")
-def results():
-    return cached_results(SCRIPT, CASES)
-
-
-ALL = [(p, c, b) for p in CASES for c in CASES[p] for b in BANDS]
-
-
-@pytest.mark.parametrize("ranks, case, band", ALL)
-def test_distributed_band_transforms_equal_numpy_and_full(results, ranks, case, band):
-    r = results(ranks)["cases"][case][band]
-    assert r["pruned"]
-    for key in ("forward_vs_numpy", "forward_vs_full", "inverse_vs_numpy", "inverse_vs_full",
-                "roundtrip"):
-        assert r[key] < 1e-12, (key, r[key])
-
-
-@pytest.mark.parametrize("ranks, case, band", ALL)
-def test_truncated_transposes_move_what_is_kept_and_add_no_memory(results, ranks, case, band):
-    r = results(ranks)["cases"][case][band]
-    # the layout's arithmetic against a count from the definition (band_check.independent_moved)
-    assert r["bytes_forward"] == r["bytes_inverse"] == r["bytes_independent"]
-    assert r["bytes_forward"] < r["bytes_full"]
-    if band == "two-thirds":
-        # a third fewer bytes: the row stage keeps (N/3)/(N/2+1) <= 2/3 of the k_z planes,
-        # the column stage (slab: the only one) under 4/9 of the lines
-        assert r["bytes_forward"] <= 0.67 * r["bytes_full"]
-    assert r["buffers_unchanged"]
-    assert r["peak_alloc"] < r["spec_block_bytes"] / 4

@@ -1,7 +1,8 @@
 """Stage-shift dealiasing (fluid.dealias: stage-shift): one product per Runge-Kutta stage on
 stage-dependent shifted grids, spherical truncation. Checked against published Runge-Kutta
 tableaux, energy conservation of the rotational form, an exact 3/2-padded product computed
-with numpy.fft, exact Navier-Stokes solutions, and the 2/3-rule run at the same k_max."""
+with numpy.fft, and the 2/3-rule run at the same k_max (the exact ABC and Taylor-Green
+solutions are in tests/test_fluid_core.py)."""
 import glob
 import os
 
@@ -169,33 +170,6 @@ def test_aliasing_left_in_a_step_is_second_order(tmp_path, scheme):
     u1, u2 = error(0.01, same), error(0.005, same)
     assert np.log2(u1 / u2) == pytest.approx(1.0, abs=0.3)
     assert u2 > 20 * e2
-
-
-def test_abc_and_taylor_green_stay_exact(config_factory):
-    # ABC flow is Beltrami (u x omega = 0 on any grid): E = E0 exp(-2 nu t) (Dombre et al.
-    # 1986, J. Fluid Mech. 167); 2-D Taylor-Green: the product is a pure gradient, removed by
-    # P, E = E0 exp(-4 nu t) (Taylor & Green 1937)
-    nu = 0.1
-    sim = Simulation(config_factory(fluid={"viscosity": nu, "dealias": "stage-shift",
-                                           "initial": {"kind": "abc"}},
-                                    time={"scheme": "rk4", "cfl": 0.5, "end": 1.0, "max_dt": 0.05}),
-                     overwrite=True, quiet=True)
-    e0 = sim.energy()
-    assert sim.run() == 0
-    assert abs(sim.energy() / (e0 * np.exp(-2 * nu * sim.t)) - 1) < 1e-9
-    nu = 0.05
-    sim = Simulation(config_factory(fluid={"viscosity": nu, "dealias": "stage-shift",
-                                           "initial": {"kind": "rest"}},
-                                    time={"scheme": "rk2", "cfl": 0.5, "end": 1.0, "max_dt": 0.02}),
-                     overwrite=True, quiet=True)
-    n = sim.layout.n
-    x = np.arange(n) * 2 * np.pi / n
-    X, Y, _ = np.meshgrid(x, x, x, indexing="ij")
-    u = np.stack([np.sin(X) * np.cos(Y), -np.cos(X) * np.sin(Y), 0 * X])
-    sim.uh[...] = np.fft.rfftn(u, axes=(1, 2, 3)) / n**3
-    e0 = sim.energy()
-    sim.run()
-    assert abs(sim.energy() / (e0 * np.exp(-4 * nu * sim.t)) - 1) < 1e-9
 
 
 def test_shifts_depend_on_seed_and_step_only_so_restarts_are_bitwise(config_factory):

@@ -28,6 +28,7 @@ import numpy as np
 from eddybox.solver.study.calibration import (
     benchmark_simulation,
     best_time,
+    best_times,
     calibrate,
     calibration_path,
     measure_fluid_points,
@@ -93,7 +94,7 @@ def _fluid_point(n, repeats, with_numpy):
                     forward(nl.w[c], lay.scratch)
         return run
 
-    t = _interleaved({"step": sim.advance, "step_full": full.advance,
+    t = best_times({"step": sim.advance, "step_full": full.advance,
                       "floor_pruned": floor(nl._inv, nl._fwd),
                       "floor_full": floor(lay.inverse, lay.forward)}, repeats)
     out = {f"step_seconds_{n}": t["step"], f"step_seconds_full_transforms_{n}": t["step_full"],
@@ -138,18 +139,6 @@ def bench_fluid(quick=False):
     return out
 
 
-def _interleaved(timed, repeats):
-    """Best wall time of each callable, the repeats interleaved so that a change in machine
-    load during the run affects all of them alike."""
-    best = dict.fromkeys(timed, float("inf"))
-    for _ in range(repeats):
-        for name, fn in timed.items():
-            t0 = time.perf_counter()
-            fn()
-            best[name] = min(best[name], time.perf_counter() - t0)
-    return best
-
-
 #: the options of the resolution section: (dealias, pruned transforms)
 RESOLUTION_OPTIONS = {"two-thirds-full": ("two-thirds", False), "two-thirds": ("two-thirds", True),
                       "phase-shift": ("phase-shift", True), "stage-shift": ("stage-shift", True),
@@ -188,7 +177,7 @@ def bench_resolution(quick=False, kmax_eta=1.5, eps=0.1):
         cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}}).data
         out[f"bytes_per_resolved_mode_{name}"] = (sum(predicted_inventory(cfg).values())
                                                   / method.kept_modes(n))
-    t = _interleaved({k: s.advance for k, s in sims.items()}, 2 if quick else 3)
+    t = best_times({k: s.advance for k, s in sims.items()}, 2 if quick else 3)
     pred = scales.predicted(validate({"grid": {"points": n_ref}, "fluid": {"viscosity": nu},
                                       "forcing": {"kind": "ou", "band": 2.0,
                                                   "dissipation": eps}}).data)

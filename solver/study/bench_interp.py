@@ -7,7 +7,6 @@ measured on the same machine in the same call.
 """
 
 import math
-import time
 
 import numba
 import numpy as np
@@ -20,6 +19,7 @@ from eddybox.particles.interpolation import (
     interpolate,
     interpolate_interleaved,
 )
+from eddybox.solver.study.calibration import best_times
 
 __all__ = ["interpolate_numpy", "bench_interpolation"]
 
@@ -83,18 +83,6 @@ def _parallel_sum(a):
             s7 += a[i + 7]
         total += ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
     return total
-
-
-def _best_times(timed, repeats):
-    """Best wall time of each callable; the repeats are interleaved so that a change in
-    machine load during the run affects all variants alike."""
-    best = dict.fromkeys(timed, math.inf)
-    for _ in range(repeats):
-        for name, fn in timed.items():
-            t0 = time.perf_counter()
-            fn()
-            best[name] = min(best[name], time.perf_counter() - t0)
-    return best
 
 
 def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_particles=2 * 10**5,
@@ -162,7 +150,7 @@ def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_part
         results[name] = np.empty_like(out)
         interpolate_interleaved(c, h, presorted[:64], order, results[name][:64])
     results["float32_unsorted"] = np.empty_like(out)
-    best = _best_times({
+    best = best_times({
         "float32": lambda: interpolate_interleaved(copies["float32"], h, presorted, order,
                                                    results["float32"]),
         "float64": lambda: interpolate_interleaved(copies["float64"], h, presorted, order,

@@ -30,6 +30,18 @@ def best_time(fn, repeats):
     return best
 
 
+def best_times(timed: dict, repeats):
+    """Best wall time of each callable; the repeats are interleaved so that a change in
+    machine load during the run affects all of them alike."""
+    best = dict.fromkeys(timed, float("inf"))
+    for _ in range(repeats):
+        for name, fn in timed.items():
+            t0 = time.perf_counter()
+            fn()
+            best[name] = min(best[name], time.perf_counter() - t0)
+    return best
+
+
 def benchmark_simulation(n, scheme="rk4", out=None, threads=None, dealias="two-thirds",
                          viscosity=0.01, pruned=True, particles=0, order=8, tau_p=0.05):
     """A forced n^3 simulation for timing (no output but its folder, spectrum initial field).
