@@ -195,8 +195,13 @@ class ETD2RK:
     name = "etd2rk"
     interpolations_per_step = 2
 
+    def __init__(self):
+        self._scratch = {}  # per set: x*, v*, u*, kept while the set keeps its size
+
     def step(self, s, interpolate, h, L):
-        x_star, v_star, u_star = (np.empty_like(s.x) for _ in range(3))
+        x_star, v_star, u_star = self._scratch.get(id(s), (None,) * 3)
+        if x_star is None or x_star.shape != s.x.shape:
+            x_star, v_star, u_star = self._scratch[id(s)] = tuple(np.empty_like(s.x) for _ in range(3))
         etd_predict(s.x, s.v, s.u_seen, s.tau_p, s.gravity, h, L, x_star, v_star)
         interpolate(x_star, u_star)
         etd_correct(s.x, s.v, s.u_seen, u_star, s.tau_p, s.gravity, h, L)

@@ -13,6 +13,7 @@ import numpy as np
 
 from eddybox.solver.fluid import fft
 from eddybox.solver.fluid import spectral_ops as ops
+from eddybox.solver.fluid.navier_stokes import DEALIASING
 
 SCHEMES: dict[str, type] = {}
 
@@ -32,8 +33,6 @@ def spectral_cfl_bound(scheme_cls, dealias: str = "two-thirds") -> float:
     spherical truncation keeps |k_i| up to sqrt(2) times further, so the bound is sqrt(2)
     lower (at the same k_max the time step is the same). `check` and the run log warn above
     it; a run that becomes unstable stops with exit 3."""
-    from eddybox.solver.fluid.navier_stokes import DEALIASING
-
     return scheme_cls.cfl_limit / (2.0 * np.pi / 3.0) / DEALIASING[dealias].cfl_factor()
 
 
