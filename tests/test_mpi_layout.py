@@ -100,6 +100,27 @@ def test_rank0_block_matches_the_memory_inventory(n, ranks, kind):
     assert local_shapes(n, ranks, kind) == (math.prod(g.phys_shape), math.prod(g.spec_shape))
 
 
+@pytest.mark.parametrize("n", [10, 18, 20])
+def test_bytes_of_every_rank_at_once_equal_each_ranks_count(n):
+    # the closed forms used for thousands of ranks against the per-rank arithmetic of the
+    # layout itself, full and truncated transposes, both directions, even and uneven grids
+    import numpy as np
+
+    from eddybox.solver.fluid.mpi_layout import bytes_sent_per_rank
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    for p1 in range(1, n + 1, 3):
+        for p2 in range(1, n // 2 + 2, 2):
+            if p1 * p2 == 1:
+                continue
+            for keep in (None, DEALIASING["two-thirds"].axis_index(n),
+                         DEALIASING["stage-shift"].axis_index(n)):
+                for d in ("forward", "inverse"):
+                    each = [[Decomposition(n, (p1, p2), p * p2 + q).bytes_sent(d, keep)
+                             for q in range(p2)] for p in range(p1)]
+                    assert np.array_equal(bytes_sent_per_rank(n, (p1, p2), d, keep), each)
+
+
 def test_buffers_and_bytes_at_64_cubed_on_two_ranks():
     # hand count, slab 2 x 1: x-slab after the 2-D r2c (32 x 64 x 33), its packed copy, and
     # the ky-slab it is received into (64 x 32 x 33)

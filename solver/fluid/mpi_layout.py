@@ -59,7 +59,7 @@ def split_range(n: int, parts: int):
     """Counts and starts of n points over `parts` blocks, the first n % parts one larger."""
     base, extra = divmod(int(n), int(parts))
     counts = [base + (1 if i < extra else 0) for i in range(parts)]
-    starts = [sum(counts[:i]) for i in range(parts)]
+    starts = [i * base + min(i, extra) for i in range(parts)]  # the running sum, in O(parts)
     return counts, starts
 
 
@@ -263,8 +263,8 @@ def transpose_buffer_points(n: int, ranks: int, layout: str = "auto", grid=None,
     kind, pg = resolve_grid(n, ranks, layout, grid)
     if kind == "serial":
         return 0
-    ranks_ = range(ranks) if rank is None else [rank]
-    return max(Decomposition(n, pg, r).buffer_points() for r in ranks_)
+    # every buffer grows with the block sizes, and rank 0 holds the largest ones
+    return Decomposition(n, pg, 0 if rank is None else rank).buffer_points()
 
 
 def transpose_bytes_sent(n: int, ranks: int, layout: str = "auto", grid=None,
@@ -277,8 +277,36 @@ def transpose_bytes_sent(n: int, ranks: int, layout: str = "auto", grid=None,
         return 0
     if keep is not None and 2 * keep + 1 >= n:
         keep = None  # nothing to prune (band_limited returns the full transforms)
-    ranks_ = range(ranks) if rank is None else [rank]
-    return max(Decomposition(n, pg, r).bytes_sent(direction, keep) for r in ranks_)
+    if rank is not None:
+        return Decomposition(n, pg, rank).bytes_sent(direction, keep)
+    return int(bytes_sent_per_rank(n, pg, direction, keep).max())
+
+
+def bytes_sent_per_rank(n: int, grid, direction: str = "forward", keep: int | None = None):
+    """Bytes every rank [p, q] of a P1 x P2 grid sends in one transform (truncated with
+    `keep`): `Decomposition.bytes_sent` for all ranks at once, in O(P1 + P2) rather than
+    O(P1 P2 (P1 + P2)) (a run on thousands of ranks). Each rank sends all its values but the
+    ones it keeps: forward, rows of its x block to the other k_y blocks (and first the other
+    k_z planes, pencil); the inverse sends back what the forward received."""
+    p1, p2 = (int(g) for g in grid)
+    nh = n // 2 + 1
+    xs = np.array(split_range(n, p1)[0])
+    ys = np.array(split_range(n, p2)[0])
+    if keep is None:
+        yk = xs                                       # k_y rows moved per k_y block
+        zk = np.array(split_range(nh, p2)[0]) if p2 > 1 else np.array([nh])
+    else:
+        band = Decomposition(n, (p1, p2), 0).band(keep)
+        yk = np.array(band.yk)
+        zk = np.array(band.zk) if p2 > 1 else np.array([band.m])
+    nx, ny, nz, ky = xs[:, None], ys[None, :], zk[None, :], yk[:, None]
+    total = np.zeros((p1, p2), dtype=np.int64)
+    forward = direction == "forward"
+    if p2 > 1:  # row stage: k_z planes between the ranks of a row
+        total += ny * nx * (zk.sum() - nz) if forward else nx * nz * (n - ny)
+    if p1 > 1:  # column stage (slab: the only one)
+        total += nx * nz * (yk.sum() - ky) if forward else ky * nz * (n - nx)
+    return total * COMPLEX_BYTES
 
 
 # ---------------------------------------------------------------------------------------------

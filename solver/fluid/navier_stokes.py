@@ -77,11 +77,17 @@ class Dealiasing:
 
     def kept_modes(self, n: int) -> int:
         """Number of kept wavenumbers in the full (both signs) spectrum."""
-        k = np.arange(-self.axis_index(n), self.axis_index(n) + 1)
+        k = np.arange(-self.axis_index(n), self.axis_index(n) + 1, dtype=np.int64)
         if not self.sphere:
             return len(k) ** 3
-        k2 = k[:, None, None] ** 2 + k[None, :, None] ** 2 + k[None, None, :] ** 2
-        return int(np.count_nonzero(9 * k2 < 2 * n * n))
+        # per (k_x, k_y) line: the k_z with 9 k_z^2 < M = 2 N^2 - 9 (k_x^2 + k_y^2), i.e.
+        # |k_z| <= isqrt((M - 1) // 9), counted in integers (a float root, then corrected)
+        m = 2 * n * n - 9 * (k[:, None] ** 2 + k[None, :] ** 2)
+        q = np.where(m > 0, (m - 1) // 9, -1)
+        top = np.floor(np.sqrt(np.maximum(q, 0))).astype(np.int64)
+        top -= top * top > q
+        top += (top + 1) * (top + 1) <= q
+        return int(np.sum(np.where(q >= 0, 2 * top + 1, 0)))
 
     def cfl_factor(self) -> float:
         """Largest kept |k_i| times dx / (2 pi / 3): 1 for the 2/3 rule, sqrt(2) on the sphere,

@@ -222,8 +222,8 @@ def resolution_options(cfg: dict, kmax_eta: float, ranks: int = 1, cal=None, ban
     from eddybox.solver.fluid.timestepping import SCHEMES
     from eddybox.solver.run import scales
 
-    if not kmax_eta > 0:
-        raise ConfigError(f"--kmax-eta: expected a number > 0, got {kmax_eta}")
+    if not (kmax_eta > 0 and math.isfinite(kmax_eta)):
+        raise ConfigError(f"--kmax-eta: expected a finite number > 0, got {kmax_eta}")
     pred = scales.predicted(cfg)
     if "eta" not in pred:
         raise ConfigError("--kmax-eta: the config's forcing sets no target dissipation, so eta is "
