@@ -148,17 +148,15 @@ def ghost_block_bytes(n: int, proc_grid, components: int, width: int) -> np.ndar
     return 8 * components * n * points
 
 
-def ghost_field_bytes(n, max_order, ranks, layout, grid=None) -> int:
-    """Bytes of the ghosted 3-component velocity block per rank (largest over the ranks),
-    including its exchange buffers: what `GhostField(layout, blockmap, 3,
-    ghost_width(max_order))` allocates on an n^3 grid. `layout` is 'slab' or 'pencil' (the
-    process grid `grid` when it fits, else the automatic one); 0 without particles
-    (max_order None) or on one rank."""
+def _ghost_grid(n, max_order, ranks, layout, grid=None):
+    """(process grid, ghost width) of the ghosted velocity block on an n^3 grid, or None without
+    particles (max_order None) or on one rank. `layout` is 'slab' or 'pencil' (the process grid
+    `grid` when it fits, else the automatic one)."""
     from eddybox.solver.errors import ConfigError
     from eddybox.solver.fluid.mpi_layout import resolve_grid
 
     if max_order is None or ranks <= 1:
-        return 0
+        return None
     if layout != "pencil" or grid is None or math.prod(grid) != ranks:
         grid = None
     try:
@@ -169,7 +167,31 @@ def ghost_field_bytes(n, max_order, ranks, layout, grid=None) -> int:
             p1 -= 1
         pg = (ranks, 1) if layout == "slab" else (p1, ranks // p1)
         pg = tuple(min(g, n) for g in pg)  # no empty blocks in the geometry
-    return int(ghost_block_bytes(n, pg, 3, ghost_width(max_order)).max())
+    return pg, ghost_width(max_order)
+
+
+def ghost_field_bytes(n, max_order, ranks, layout, grid=None) -> int:
+    """Bytes of the ghosted 3-component velocity block per rank (largest over the ranks),
+    including its exchange buffers: what `GhostField(layout, blockmap, 3,
+    ghost_width(max_order))` allocates on an n^3 grid; 0 without particles or on one rank."""
+    geo = _ghost_grid(n, max_order, ranks, layout, grid)
+    return 0 if geo is None else int(ghost_block_bytes(n, geo[0], 3, geo[1]).max())
+
+
+def ghost_block_extents(n, max_order, ranks, layout, grid=None):
+    """(x, y, z) extents of the largest ghosted block over the ranks (N on an axis held
+    whole), or None on one rank."""
+    from eddybox.solver.fluid.mpi_layout import split_range
+
+    geo = _ghost_grid(n, max_order, ranks, layout, grid)
+    if geo is None:
+        return None
+    pg, w = geo
+    sizes = []
+    for p in pg:
+        counts, starts = split_range(n, int(p))
+        sizes.append(_axis_counts([(a, a + c) for a, c in zip(starts, counts)], n, w)[0])
+    return int(sizes[0].max()), int(sizes[1].max()), n
 
 
 # ---------------------------------------------------------------------------------------------

@@ -1,13 +1,14 @@
 """Particle sets in the run loop: seeding at the release time, one ETD step per fluid step,
 per-set statistics, checkpoint state.
 
-Per step (after the fluid has advanced from t_n to t_{n+1}):
-    predictor with u_n = u(x_n, t_n) (kept from the previous step)      -> x*, v*
-    u* = u(x*, t_{n+1}) interpolated from the new field                  -> corrector x_{n+1}, v_{n+1}
-    u(x_{n+1}, t_{n+1}) interpolated and kept for the next step's predictor
-so each step costs one inverse transform of the velocity and two interpolations per particle.
-See `particles.integrator` for the scheme (exact for frozen u, second order; tracers, tau_p = 0,
-reduce to Heun's method, the second-order RK scheme).
+Per step (after the fluid has advanced from t_n to t_{n+1}), with the multistep ETD2 scheme
+(`particles.integrator`, registry PARTICLE_SCHEMES; second order, exact for frozen u):
+    x_{n+1}, v_{n+1} from u_n = u(x_n, t_n) and u_{n-1} (both kept from earlier steps)
+    u(x_{n+1}, t_{n+1}) interpolated from the new field and kept for the next step
+so each step costs one inverse transform of the velocity, one interleaved single-precision
+copy of it (`interpolation.InterleavedField`) and one interpolation per particle. A set
+without history (just released, or restarted from a checkpoint without it) takes one
+two-interpolation ETD2RK step first.
 """
 from __future__ import annotations
 
@@ -18,12 +19,27 @@ from eddybox.particles.physical import physical_numbers
 
 #: steps between re-sorts of the particles by grid cell
 SORT_EVERY = 16
-#: float64 arrays of 3 components kept per particle: x, v, u_seen, x*, v*, u*; plus an int64 id
-_ARRAYS_PER_PARTICLE = 6
+#: float64 arrays of 3 components kept per particle: x, v, u_seen, u_prev; plus an int64 id
+_ARRAYS_PER_PARTICLE = 4
+#: the particle time scheme of the run loop (integrator.PARTICLE_SCHEMES)
+SCHEME = "etd2"
+#: precision of the interleaved velocity copy the particles interpolate from
+COPY_DTYPE = np.float32
 
 
 def bytes_per_particle() -> int:
     return _ARRAYS_PER_PARTICLE * 3 * 8 + 8
+
+
+def interpolation_copy_bytes(n, max_order, ranks, layout, grid=None) -> int:
+    """Bytes of the interleaved velocity copy (`interpolation.InterleavedField`) per rank: the
+    grid, or the largest ghosted block, with whole axes padded for the largest order (0 without
+    particles: max_order None)."""
+    if max_order is None:
+        return 0
+    ext = (n, n, n) if ranks <= 1 else migration.ghost_block_extents(n, max_order, ranks, layout, grid)
+    return 3 * np.dtype(COPY_DTYPE).itemsize * int(np.prod([e + max_order if e == n else e
+                                                             for e in ext]))
 
 
 class ParticleSet:
@@ -48,8 +64,9 @@ class ParticleSet:
         self._alloc(0)
 
     def _alloc(self, n):
-        self.x, self.v, self.u_seen = (np.zeros((n, 3)) for _ in range(3))
-        self.x_star, self.v_star, self.u_star = (np.zeros((n, 3)) for _ in range(3))
+        self.x, self.v, self.u_seen, self.u_prev = (np.zeros((n, 3)) for _ in range(4))
+        #: the multistep scheme's history: u_prev and h_prev hold the step before
+        self.history, self.h_prev = False, 0.0
 
     def resolve(self, tau_eta: float, a_eta: float):
         """Fix tau_p (from St and the measured tau_eta) and, for physical sets, gravity."""
@@ -105,37 +122,53 @@ class ParticleSystem:
         self.released = False
         self.release_scales = {}
         self._frozen_field = None
+        self.scheme = integrator.PARTICLE_SCHEMES[SCHEME]()
+        shape, start = ((self.ghost_u.array.shape, self.ghost_u.start) if self.distributed
+                        else ((3,) + tuple(layout.phys_shape), (0, 0, 0)))
+        self._copy = interpolation.InterleavedField(shape, start, (self.n,) * 3,
+                                                    max(st.order for st in self.sets), COPY_DTYPE)
 
     # -- the velocity field in physical space, as the interpolation kernels want it -----------
     def _field(self, sim):
-        """The velocity for the interpolation: (array, start) of the whole grid (serial) or of
-        this rank's ghosted block."""
+        """The velocity for the interpolation: an interleaved single-precision copy of the
+        whole grid (serial) or of this rank's ghosted block (`interpolation.InterleavedField`;
+        its rounding, 2.4e-7 of max |u| at most, is far below the interpolation error)."""
         if sim.frozen and self._frozen_field is not None:
             return self._frozen_field
         u = sim.nl.to_physical(sim.uh)
         if self.distributed:
             self.ghost_u.fill(u)
-            field = (self.ghost_u.array, self.ghost_u.start)
+            array = self.ghost_u.array
         else:
-            field = (u, (0, 0, 0))
+            array = u
+        self._copy.fill(array)
         if sim.frozen:
-            self._frozen_field = (field[0].copy(), field[1])
-            return self._frozen_field
-        return field
+            self._frozen_field = self._copy
+        return self._copy
 
-    def _interp(self, field, s, pos, out):
-        # particles are kept in cell order (see `_sort_by_cell`), so no sort inside the call
+    def _interp(self, copy, s, pos, out):
+        # particles are kept in cell order (see `_sort_by_cell`): neighbours share stencil rows
+        try:
+            interpolation.interpolate_interleaved(copy, self.h, pos, s.order, out)
+        except IndexError:
+            self._escaped(s)
+
+    def _escaped(self, s):
+        from eddybox.solver.errors import NumericalInstability
+
+        raise NumericalInstability(
+            f"particles of set {s.name!r} moved more than {migration.GHOST_MARGIN} grid cells "
+            "in one step, beyond the ghost layers of their rank; lower time.cfl or set "
+            "time.max_dt (fast settling needs dt |v| < 2 dx)") from None
+
+    def _interp_grid(self, field, s, pos, out):
+        """Interpolate a (array, start) grid field directly (statistics such as Q)."""
         array, start = field
         try:
             interpolation.interpolate(array, start, (self.n,) * 3, self.h, pos, s.order, out,
                                       cell_sort=False)
         except IndexError:
-            from eddybox.solver.errors import NumericalInstability
-
-            raise NumericalInstability(
-                f"particles of set {s.name!r} moved more than {migration.GHOST_MARGIN} grid cells "
-                "in one step, beyond the ghost layers of their rank; lower time.cfl or set "
-                "time.max_dt (fast settling needs dt |v| < 2 dx)") from None
+            self._escaped(s)
 
     def _sum(self, x):
         return self.layout.sum(x) if self.distributed else x
@@ -148,7 +181,7 @@ class ParticleSystem:
             if s.x.shape[0] < 1024:
                 continue
             perm = interpolation.cell_order(s.x, np.full(3, self.h), np.full(3, self.n, np.int64))
-            for name in ("ids", "x", "v", "u_seen"):
+            for name in ("ids", "x", "v", "u_seen", "u_prev"):
                 setattr(s, name, np.ascontiguousarray(getattr(s, name)[perm]))
 
     def seed(self, sim):
@@ -197,21 +230,22 @@ class ParticleSystem:
         if sim.step % SORT_EVERY == 0:
             self._sort_by_cell()
         for s in self.sets:
-            integrator.etd_predict(s.x, s.v, s.u_seen, s.tau_p, s.gravity, dt, self.length,
-                                   s.x_star, s.v_star)
-            self._interp(field, s, s.x_star, s.u_star)
-            integrator.etd_correct(s.x, s.v, s.u_seen, s.u_star, s.tau_p, s.gravity, dt, self.length)
-            self._interp(field, s, s.x, s.u_seen)
+            self.scheme.step(s, lambda pos, out, s=s: self._interp(field, s, pos, out), dt,
+                             self.length)
             if s.tau_p == 0.0:
-                # a tracer's velocity is the fluid velocity where it is, not at the predictor
+                # a tracer's velocity is the fluid velocity where it is
                 s.v[...] = s.u_seen
         if self.distributed:
             for s in self.sets:
+                history, h_prev = s.history, s.h_prev
                 got = migration.migrate(self.layout, self.blockmap, self.h,
-                                        {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen})
+                                        {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen,
+                                         "u_prev": s.u_prev})
                 s._alloc(got["x"].shape[0])
                 s.ids = got["ids"]
-                s.x[...], s.v[...], s.u_seen[...] = got["x"], got["v"], got["u_seen"]
+                s.x[...], s.v[...], s.u_seen[...], s.u_prev[...] = (got["x"], got["v"],
+                                                                    got["u_seen"], got["u_prev"])
+                s.history, s.h_prev = history, h_prev
 
     def finite(self) -> bool:
         bad = sum(int(not (np.isfinite(s.x).all() and np.isfinite(s.v).all())) for s in self.sets)
@@ -252,7 +286,7 @@ class ParticleSystem:
             qf = (q, (0, 0, 0))
         for s in self.sets:
             qp = np.empty((s.x.shape[0], 1))
-            self._interp(qf, s, s.x, qp)
+            self._interp_grid(qf, s, s.x, qp)
             g = s.gravity
             gn = np.linalg.norm(g)
             ghat = g / gn if gn > 0 else np.array([0.0, 0.0, -1.0])
@@ -281,10 +315,13 @@ class ParticleSystem:
         st = {"released": np.int8(self.released)}
         for s in self.sets:
             # global id order, so any layout can restart from it
-            g = migration.gather_by_id(self.layout, s.ids, {"x": s.x, "v": s.v, "u_seen": s.u_seen})
+            arrays = {"x": s.x, "v": s.v, "u_seen": s.u_seen, "u_prev": s.u_prev}
+            g = migration.gather_by_id(self.layout, s.ids, arrays)
             if g is None:
-                g = {"ids": s.ids[:0], "x": s.x[:0], "v": s.v[:0], "u_seen": s.u_seen[:0]}
+                g = dict({k: a[:0] for k, a in arrays.items()}, ids=s.ids[:0])
             st[s.name] = {"ids": g["ids"], "x": g["x"], "v": g["v"], "u_seen": g["u_seen"],
+                          "u_prev": g["u_prev"], "history": np.int8(s.history),
+                          "h_prev": np.float64(s.h_prev),
                           "tau_p": np.float64(np.nan if s.tau_p is None else s.tau_p),
                           "stokes": np.float64(np.nan if s.stokes is None else s.stokes),
                           "gravity": s.gravity}
@@ -295,22 +332,28 @@ class ParticleSystem:
         self.released = bool(st["released"])
         self.release_scales = {k: float(v) for k, v in st.get("release_scales", {}).items()}
         for s in self.sets:
-            d = st[s.name]
+            d = dict(st[s.name])
+            # a checkpoint without the multistep history restarts with one ETD2RK step
+            history = bool(d.get("history", 0)) and "u_prev" in d
+            d.setdefault("u_prev", d["u_seen"])
             rows = d
             if d["x"].shape[0]:
                 rows = migration.scatter_by_owner(self.layout, self.blockmap, self.h, d["ids"],
-                                                  {"x": d["x"], "v": d["v"], "u_seen": d["u_seen"]})
+                                                  {k: d[k] for k in ("x", "v", "u_seen", "u_prev")})
             s._alloc(rows["x"].shape[0])
             s.ids = np.asarray(rows["ids"], np.int64)
             s.x[...], s.v[...], s.u_seen[...] = rows["x"], rows["v"], rows["u_seen"]
+            s.u_prev[...] = rows["u_prev"]
+            s.history, s.h_prev = history, float(d.get("h_prev", 0.0))
             s.tau_p = None if np.isnan(d["tau_p"]) else float(d["tau_p"])
             s.stokes = None if np.isnan(d["stokes"]) else float(d["stokes"])
             s.gravity = np.asarray(d["gravity"], float)
             s.released = self.released
 
     def inventory(self) -> dict:
-        inv = {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.x_star, s.v_star, s.u_star))
+        inv = {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.u_prev))
                                 + s.ids.nbytes for s in self.sets)}
         if self.distributed:
             inv["ghosted_velocity"] = self.ghost_u.array.nbytes
+        inv["interpolation_copy"] = self._copy.nbytes
         return inv

@@ -121,7 +121,10 @@ def _add_estimate(sp):
     sp.add_argument("config", help="YAML config of the production run")
     sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                     help="override a config key")
-    sp.add_argument("--points", type=int, required=True, help="grid points per direction N")
+    sp.add_argument("--points", type=int, default=None, help="grid points per direction N")
+    sp.add_argument("--kmax-eta", type=float, default=None,
+                    help="instead of --points: compare the dealiasing options at this k_max eta "
+                         "and pick the cheapest")
     sp.add_argument("--ranks", type=int, required=True, help="MPI ranks P")
     sp.add_argument("--particles", type=int, default=None, help="particles in total")
     sp.add_argument("--network-bandwidth", type=float, default=None, help="bytes/s per rank")
@@ -300,9 +303,12 @@ def cmd_report(args, comm=None):
 
 
 def cmd_estimate(args, comm=None):
-    from eddybox.solver.study.estimate import print_estimate
+    from eddybox.solver.study.estimate import print_estimate, print_resolution_options
 
-    print_estimate(args)
+    if args.kmax_eta is not None:
+        print_resolution_options(args)
+    else:
+        print_estimate(args)
     return EXIT_DONE
 
 

@@ -38,6 +38,7 @@ BAD_CONFIGS = [
     ({"fluid": {"initial": {"kind": "abc", "peak": 2}}}, "fluid.initial.peak"),
     ({"fluid": {"initial": {"kind": "file"}}}, "fluid.initial.path"),
     ({"fluid": {"dealias": "three-halves"}}, "fluid.dealias"),
+    ({"fluid": {"dealias": "stage-shift"}, "time": {"scheme": "rk3"}}, "time.scheme 'rk3'"),
     ({"time": {"cfl": 0.0}}, "time.cfl"),
     ({"time": {"cfl": 5.0}}, "time.cfl"),
     ({"time": {"scheme": "rk3", "cfl": 2.0}}, "time.cfl"),

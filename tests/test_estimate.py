@@ -12,7 +12,7 @@ from eddybox.solver.study import estimate as est
 
 
 @pytest.mark.parametrize("scheme,dealias,particles", [("rk4", "two-thirds", False), ("rk3", "two-thirds", True),
-                                                       ("rk2", "phase-shift", True)])
+                                                       ("rk2", "phase-shift", True), ("rk4", "stage-shift", False)])
 def test_memory_inventory_matches_live_arrays(config_factory, scheme, dealias, particles):
     kw = dict(grid={"points": 24}, fluid={"viscosity": 0.05, "initial": {"kind": "taylor-green"},
                                           "dealias": dealias},
@@ -93,3 +93,42 @@ def test_estimate_table_and_scaling(tmp_path, capsys):
     e2 = est.estimate(c, 512, 8, cal=calib)
     assert e2["steps"] == pytest.approx(2 * e8["steps"], rel=0.01)
     assert main(["estimate", str(path), "--points", "255", "--ranks", "4", "--calibration", str(cal)]) == 2
+
+
+def test_fft_friendly_sizes():
+    # even, prime factors 2, 3, 5, 7 only (the sizes FFTW plans fastest; common practice)
+    assert [est.fft_friendly(x) for x in (4, 63.2, 66, 68, 90.5, 97, 127)] == [4, 64, 70, 70, 96, 98, 128]
+
+
+def test_estimate_picks_the_cheapest_dealiasing_for_a_target_kmax_eta(tmp_path, capsys):
+    from eddybox.solver.run.config import validate
+
+    cfg = validate({"grid": {"points": 64}, "fluid": {"viscosity": 0.005},
+                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1},
+                    "time": {"end": 10.0, "cfl": 0.6}})
+    cal = {"fluid_model": {"a": 3e-10, "b": 4e-9}, "threads": 1, "umax_over_urms": 6.0}
+    rows = {r["dealias"]: r for r in est.resolution_options(cfg, 1.5, 1, cal)}
+    eta = (0.005**3 / 0.1) ** 0.25  # Kolmogorov length (Pope 2000, eq. 6.1x)
+    for r in rows.values():
+        assert r["kmax_eta"] >= 1.5
+        assert r["kmax_eta"] == pytest.approx(r["points"] * eta * (2**0.5 if r["dealias"] != "two-thirds" else 1) / 3)
+    # the same k_max with sqrt(2) fewer points per direction, the same dt, a step a third
+    # the cost; phase-shift does two products per stage
+    assert rows["stage-shift"]["points"] < rows["two-thirds"]["points"] / 1.35
+    assert rows["stage-shift"]["dt"] == pytest.approx(rows["two-thirds"]["dt"], rel=0.05)
+    assert rows["stage-shift"]["core_hours"] < rows["two-thirds"]["core_hours"] / 2
+    assert rows["phase-shift"]["seconds_per_step"] == pytest.approx(
+        2 * rows["stage-shift"]["seconds_per_step"], rel=0.05)
+    assert min(rows.values(), key=lambda r: r["core_hours"])["dealias"] == "stage-shift"
+    path = tmp_path / "e.yaml"
+    path.write_text(yaml.safe_dump({"fluid": {"viscosity": 0.005}, "time": {"scheme": "rk3"},
+                                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}}))
+    calp = tmp_path / "cal.json"
+    calp.write_text('{"fluid_model": {"a": 3e-10, "b": 4e-9}, "threads": 1, "umax_over_urms": 6.0}')
+    assert main(["estimate", str(path), "--kmax-eta", "1.5", "--ranks", "8", "--calibration", str(calp)]) == 0
+    out = capsys.readouterr().out
+    # rk3 cannot take stage-shift: it is offered with rk4
+    assert "stage-shift   rk4" in out and "two-thirds    rk3" in out
+    assert "cheapest: fluid.dealias stage-shift, time.scheme rk4" in out
+    assert main(["estimate", str(path), "--ranks", "8", "--calibration", str(calp)]) == 2
+    assert "--points" in capsys.readouterr().err

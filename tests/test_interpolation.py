@@ -284,3 +284,97 @@ def test_stencil_outside_block_raises_instead_of_reading_out_of_bounds():
     with pytest.raises(IndexError, match="1 particle"):
         interpolate(block, start, n_global, h, positions, 4, out)
     assert np.all(np.isfinite(out[0])) and np.all(np.isnan(out[1]))
+
+
+# ---------------------------------------------------------------------------------------------
+# Interleaved (padded, components side by side) copies, the run loop's interpolation
+# ---------------------------------------------------------------------------------------------
+from eddybox.particles.interpolation import InterleavedField, interpolate_interleaved  # noqa: E402
+
+
+def turbulent_field(rng, n, kmax_eta=1.5):
+    """A random solenoid-free-agnostic field with the model spectrum E ~ k^(-5/3) exp(-5.2 k eta)
+    (the inertial range and dissipation cut-off of Pope 2000, eq. 6.246, beta = 5.2; from
+    memory), 2/3-dealiased, eta such that k_max eta = kmax_eta; scaled to max |u| = 1."""
+    k1 = np.fft.fftfreq(n, 1.0 / n)
+    kz = np.arange(n // 2 + 1)
+    k = np.sqrt(k1[:, None, None] ** 2 + k1[None, :, None] ** 2 + kz[None, None, :] ** 2)
+    keep = ((3 * np.abs(k1)[:, None, None] < n) & (3 * np.abs(k1)[None, :, None] < n)
+            & (3 * kz[None, None, :] < n))
+    eta = kmax_eta / (n / 3.0)
+    with np.errstate(divide="ignore"):
+        spec = np.where(k > 0, k ** (-5.0 / 3.0) * np.exp(-5.2 * k * eta), 0.0)
+    amp = np.sqrt(spec / (4 * np.pi * np.maximum(k, 1.0) ** 2)) * keep
+    noise = rng.standard_normal((3,) + k.shape) + 1j * rng.standard_normal((3,) + k.shape)
+    u = np.fft.irfftn(amp * noise, s=(n, n, n), axes=(1, 2, 3))
+    return np.ascontiguousarray(u / np.abs(u).max())
+
+
+@pytest.mark.parametrize("order", ORDERS)
+@pytest.mark.parametrize("ncomp", [1, 3])
+def test_interleaved_copy_equals_interpolate(order, ncomp):
+    # the same Lagrange sums in another order: equal to round-off, on the whole periodic grid
+    # and on a ghosted block (x and y held in part, z whole and padded by the copy)
+    rng = np.random.default_rng(order + ncomp)
+    n = (12, 10, 14)
+    field = random_real_field(rng, ncomp, n)
+    pos = rng.uniform(0, 1, (500, 3)) * L
+    pos[:4] = [[0.0, 0.0, 0.0], [np.nextafter(L, 0)] * 3, [L - 1e-15, 0.0, np.nextafter(L, 0)],
+               [1e-300, L / 2, 3.0]]
+    ref = run_interp(field, pos, order)
+    copy = InterleavedField(field.shape, (0, 0, 0), n, order, np.float64).fill(field)
+    got = interpolate_interleaved(copy, [L / m for m in n], pos, order, np.empty_like(ref))
+    assert np.abs(got - ref).max() < 1e-13 * np.abs(field).max()
+    n = (24, 20, 14)
+    field = random_real_field(rng, ncomp, n)
+    lo, hi = (8, 7), (14, 12)  # a block of x in [8, 14), y in [7, 12) with p/2 + 1 ghost planes
+    w = order // 2 + 1
+    block = np.ascontiguousarray(field[:, lo[0] - w:hi[0] + w, lo[1] - w:hi[1] + w, :])
+    start = (lo[0] - w, lo[1] - w, 0)
+    inside = rng.uniform(0, 1, (300, 3)) * [(hi[0] - lo[0]) * L / n[0], (hi[1] - lo[1]) * L / n[1], L]
+    inside += [lo[0] * L / n[0], lo[1] * L / n[1], 0.0]
+    copy = InterleavedField(block.shape, start, n, order, np.float64).fill(block)
+    got = interpolate_interleaved(copy, [L / m for m in n], inside, order, np.empty((300, ncomp)))
+    assert np.abs(got - run_interp(field, inside, order)).max() < 1e-13 * np.abs(field).max()
+
+
+def test_single_precision_copy_is_far_below_the_interpolation_error():
+    # a field resolved like a run at k_max eta = 1.5: the order-8 interpolation error against
+    # the exact Fourier series (fourier_series_at) is ~3e-4 of max |u|; the float32 copy stays
+    # within 1e-6 (the bound asked for; InterleavedField states 4 x 2^-24 = 2.4e-7, the IEEE 754
+    # rounding of each value times the absolute weight sums) and 1000 times below that error
+    rng = np.random.default_rng(11)
+    n = 32
+    u = turbulent_field(rng, n)
+    pos = rng.uniform(0.0, L, (2000, 3))
+    exact = fourier_series_at(np.fft.rfftn(u, axes=(1, 2, 3)), L, pos)
+    out = {}
+    for dtype in (np.float32, np.float64):
+        copy = InterleavedField(u.shape, (0, 0, 0), (n, n, n), 8, dtype).fill(u)
+        out[dtype] = interpolate_interleaved(copy, L / n, pos, 8, np.empty((2000, 3)))
+    rounding = np.abs(out[np.float32] - out[np.float64]).max()
+    interp_error = np.abs(out[np.float64] - exact).max()
+    assert rounding < 4 * 2.0**-24 < 1e-6
+    assert 1e-5 < interp_error < 1e-3
+    assert rounding < 1e-3 * interp_error
+
+
+def test_interleaved_copy_refuses_what_it_cannot_serve():
+    rng = np.random.default_rng(5)
+    field = random_real_field(rng, 3, (8, 8, 8))
+    copy = InterleavedField(field.shape, (0, 0, 0), (8, 8, 8), 4).fill(field)
+    with pytest.raises(ValueError, match="order 8"):
+        interpolate_interleaved(copy, L / 8, np.zeros((2, 3)), 8, np.empty((2, 3)))
+    with pytest.raises(ValueError, match="does not match"):
+        copy.fill(field[:, :4])
+    with pytest.raises(ValueError, match="components"):
+        InterleavedField((4, 8, 8, 8), (0, 0, 0), (8, 8, 8), 4)
+    # a block without ghost layers: stencils leave it, NaN rows and IndexError (never a read
+    # out of bounds)
+    block = np.ascontiguousarray(field[:, 2:6, 2:6, :])
+    copy = InterleavedField(block.shape, (2, 2, 0), (8, 8, 8), 4).fill(block)
+    out = np.zeros((2, 3))
+    with pytest.raises(IndexError, match="1 particle"):
+        interpolate_interleaved(copy, L / 8, np.array([[3.5 * L / 8, 3.5 * L / 8, 1.0],
+                                                       [0.1, 0.1, 0.1]]), 4, out)
+    assert np.isnan(out[1]).all() and np.isfinite(out[0]).all()

@@ -100,6 +100,27 @@ def test_rank0_block_matches_the_memory_inventory(n, ranks, kind):
     assert local_shapes(n, ranks, kind) == (math.prod(g.phys_shape), math.prod(g.spec_shape))
 
 
+@pytest.mark.parametrize("n", [10, 18, 20])
+def test_bytes_of_every_rank_at_once_equal_each_ranks_count(n):
+    # the closed forms used for thousands of ranks against the per-rank arithmetic of the
+    # layout itself, full and truncated transposes, both directions, even and uneven grids
+    import numpy as np
+
+    from eddybox.solver.fluid.mpi_layout import bytes_sent_per_rank
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    for p1 in range(1, n + 1, 3):
+        for p2 in range(1, n // 2 + 2, 2):
+            if p1 * p2 == 1:
+                continue
+            for keep in (None, DEALIASING["two-thirds"].axis_index(n),
+                         DEALIASING["stage-shift"].axis_index(n)):
+                for d in ("forward", "inverse"):
+                    each = [[Decomposition(n, (p1, p2), p * p2 + q).bytes_sent(d, keep)
+                             for q in range(p2)] for p in range(p1)]
+                    assert np.array_equal(bytes_sent_per_rank(n, (p1, p2), d, keep), each)
+
+
 def test_buffers_and_bytes_at_64_cubed_on_two_ranks():
     # hand count, slab 2 x 1: x-slab after the 2-D r2c (32 x 64 x 33), its packed copy, and
     # the ky-slab it is received into (64 x 32 x 33)
@@ -197,3 +218,33 @@ def test_impossible_layouts_fail_on_every_rank_without_hanging(results, ranks):
     if ranks == 4:
         # a 1 x 4 grid needs 4 kz planes; at N = 4 only N/2+1 = 3 exist
         assert "P2 = 4" in by_case[("4", "pencil", "[1, 4]")]
+
+
+# pruned transforms with truncated transposes (band_limited), for the 2/3-rule and spherical
+# bands: internal, so they must equal today's transforms to round-off on every layout
+BANDS = ("two-thirds", "stage-shift")
+ALL_BANDS = [(p, c, b) for p, c in ALL for b in BANDS]
+
+
+@pytest.mark.parametrize("ranks, case, band", ALL_BANDS)
+def test_band_transforms_equal_numpy_and_the_full_transforms(results, ranks, case, band):
+    r = results(ranks)["cases"][case]["bands"][band]
+    assert r["pruned"]
+    for key in ("forward_vs_numpy", "forward_vs_full", "inverse_vs_numpy", "inverse_vs_full",
+                "roundtrip"):
+        assert r[key] < 1e-12, (key, r[key])
+
+
+@pytest.mark.parametrize("ranks, case, band", ALL_BANDS)
+def test_truncated_transposes_move_what_is_kept_and_add_no_memory(results, ranks, case, band):
+    r = results(ranks)["cases"][case]["bands"][band]
+    # the layout's arithmetic against a count from the definition (band_check.independent_moved)
+    assert r["bytes_forward"] == r["bytes_inverse"] == r["bytes_independent"]
+    assert r["bytes_forward"] < r["bytes_full"]
+    if band == "two-thirds":
+        # a third fewer bytes: the row stage keeps (N/3)/(N/2+1) <= 2/3 of the k_z planes,
+        # the column stage (slab: the only one) under 4/9 of the lines
+        assert r["bytes_forward"] <= 0.67 * r["bytes_full"]
+    assert r["buffers_unchanged"]
+    if not case.startswith("numpy-"):
+        assert r["peak_alloc"] < r["spec_block_bytes"] / 4

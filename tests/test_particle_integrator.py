@@ -50,6 +50,39 @@ def advance(x, v, tau_p, g, dt, steps, velocity, check=None):
     return x, v
 
 
+def advance_multistep(x, v, tau_p, g, dts, velocity):
+    """The run loop's scheme (`PARTICLE_SCHEMES['etd2']`) on one set, frozen field: the seen
+    velocity at the start is u(x0); the first step is ETD2RK, the rest multistep."""
+    from types import SimpleNamespace
+
+    from eddybox.particles.integrator import PARTICLE_SCHEMES
+
+    s = SimpleNamespace(x=x.copy(), v=v.copy(), u_seen=velocity(x), u_prev=np.empty_like(x),
+                        tau_p=tau_p, gravity=g, history=False, h_prev=0.0)
+    calls = []
+
+    def interpolate(pos, out):
+        calls.append(len(pos))
+        out[...] = velocity(pos)
+
+    scheme = PARTICLE_SCHEMES["etd2"]()
+    for h in dts:
+        scheme.step(s, interpolate, h, L)
+    return s.x, s.v, len(calls)
+
+
+FLOW = np.array([7.0, -11.0, 2.5])
+
+
+def uniform_flow(p):
+    return np.tile(FLOW, (len(p), 1))
+
+
+def uniform_flow_exact(x0, v0, tau_p, t):
+    """Stokes drag in a uniform flow U: x = x0 + U t + (v0 - U) tau_p (1 - e^{-t/tau_p})."""
+    return x0 + FLOW * t + (v0 - FLOW) * tau_p * (1.0 - np.exp(-t / tau_p))
+
+
 def reference(x0, v0, tau_p, g, t_end, velocity=taylor_green):
     """scipy.integrate.solve_ivp (DOP853, tight tolerances) of the same equations
     (reduced Maxey & Riley 1983, Phys. Fluids 26, 883) on the analytic field."""
@@ -150,16 +183,25 @@ def test_frozen_taylor_green_follows_solve_ivp(tau_p, g):
 
 
 @pytest.mark.parametrize("tau_p", [0.0, 0.05, 0.5, 5.0])
-def test_second_order_in_time(tau_p):
-    # Global error O(dt^2) for a two-stage second-order scheme (Cox & Matthews 2002,
-    # J. Comput. Phys. 176, 430); measured against solve_ivp on the analytic field.
+@pytest.mark.parametrize("scheme", ["etd2rk", "etd2", "etd2-variable"])
+def test_second_order_in_time(tau_p, scheme):
+    # Global error O(dt^2) for the two-stage ETD2RK and the multistep ETD2 (Cox & Matthews
+    # 2002, J. Comput. Phys. 176, 430), measured against solve_ivp on the analytic field; with
+    # steps alternating 1.25 h and 0.75 h the multistep's backward slope uses h_{n-1}
     x0, v0 = start_state()
     g = np.array([0.0, 0.2, -0.5])
     x_ref, v_ref = reference(x0, v0, tau_p, g, 1.0)
     dts = np.array([0.1, 0.05, 0.025, 0.0125])
     errors = []
     for dt in dts:
-        x, v = advance(x0, v0, tau_p, g, dt, int(round(1.0 / dt)), taylor_green)
+        steps = int(round(1.0 / dt))
+        if scheme == "etd2rk":
+            x, v = advance(x0, v0, tau_p, g, dt, steps, taylor_green)
+        else:
+            hs = [dt * (0.75 if k % 2 else 1.25) if scheme.endswith("variable") else dt
+                  for k in range(steps)]
+            hs[-1] = 1.0 - sum(hs[:-1])
+            x, v, _ = advance_multistep(x0, v0, tau_p, g, hs, taylor_green)
         errors.append(max(periodic_distance(x, x_ref), np.abs(v - v_ref).max()))
     observed = np.polyfit(np.log(dts), np.log(errors), 1)[0]
     assert abs(observed - 2.0) < 0.3, (observed, errors)
@@ -201,18 +243,13 @@ def test_periodic_crossing_keeps_positions_in_box():
                          [[0.0, 0.0, 0.0], [np.nextafter(L, 0.0)] * 3, [1e-17] * 3,
                           [L - 1e-15] * 3]])
     v0 = rng.normal(0.0, 3.0, (n, 3))
-    flow = np.array([7.0, -11.0, 2.5])
     tau_p, dt, steps = 0.3, 0.05, 200
 
     def check(x, v, x_star):
         assert x.shape == (n, 3) and np.all((x >= 0.0) & (x < L))
         assert np.all((x_star >= 0.0) & (x_star < L))
-    x, v = advance(x0, v0, tau_p, NO_GRAVITY, dt, steps,
-                   lambda p: np.tile(flow, (len(p), 1)), check)
-    t = steps * dt
-    decay = np.exp(-t / tau_p)
-    x_exact = x0 + flow * t + (v0 - flow) * tau_p * (1.0 - decay)
-    assert periodic_distance(x, x_exact) < 1e-9
+    x, v = advance(x0, v0, tau_p, NO_GRAVITY, dt, steps, uniform_flow, check)
+    assert periodic_distance(x, uniform_flow_exact(x0, v0, tau_p, steps * dt)) < 1e-9
     assert np.all(np.isfinite(x)) and len(x) == n
 
 
@@ -227,3 +264,34 @@ def test_wrap_handles_round_off_at_the_faces():
         # same periodic point: difference is a multiple of L up to round-off
         k = np.round((value - r) / L)
         assert abs(value - r - k * L) <= 4 * np.spacing(max(abs(value), L))
+
+
+# ---------------------------------------------------------------------------------------------
+# One interpolation per step: multistep ETD2 (Cox & Matthews 2002, eq. 6)
+# ---------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("tau_p, g", [(0.0, NO_GRAVITY), (0.1, NO_GRAVITY), (1.0, NO_GRAVITY),
+                                      (0.3, np.array([0.0, 0.0, -1.0]))])
+def test_multistep_follows_solve_ivp_with_one_interpolation_per_step(tau_p, g):
+    # the same budget as ETD2RK above (48^3 grid, order 8, dt = 0.01, reference solve_ivp)
+    x0, v0 = start_state()
+    velocity = taylor_green_on_grid(48)
+    x, v, calls = advance_multistep(x0, v0, tau_p, g, [0.01] * 100, velocity)
+    assert calls == 100 + 1  # one per step, and one more for the ETD2RK start
+    x_ref, v_ref = reference(x0, v0, tau_p, g, 1.0)
+    assert periodic_distance(x, x_ref) < 1e-4
+    assert np.abs(v - v_ref).max() < 1e-4
+
+
+def test_multistep_tracers_are_adams_bashforth_2_and_constant_flow_is_exact():
+    # tau_p = 0 at constant h: x_{n+1} = x_n + h (3/2 u_n - 1/2 u_{n-1}) (Adams-Bashforth,
+    # e.g. Hairer, Norsett & Wanner 1993, sec. III.1); the first step is Heun's
+    x0, v0 = start_state()
+    h = 0.05
+    x1, _, _ = advance_multistep(x0, v0, 0.0, NO_GRAVITY, [h], taylor_green)
+    x2, _, _ = advance_multistep(x0, v0, 0.0, NO_GRAVITY, [h, h], taylor_green)
+    want = x1 + h * (1.5 * taylor_green(x1) - 0.5 * taylor_green(x0))
+    np.testing.assert_allclose(x2, want % L, rtol=0, atol=1e-14)
+    # uniform flow: the seen velocity is constant, d = 0, the Stokes drag solution is exact
+    tau_p, n_steps, h = 0.3, 200, 0.05
+    x, _, _ = advance_multistep(x0, v0, tau_p, NO_GRAVITY, [h] * n_steps, uniform_flow)
+    assert periodic_distance(x, uniform_flow_exact(x0, v0, tau_p, n_steps * h)) < 1e-9

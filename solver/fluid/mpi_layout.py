@@ -59,7 +59,7 @@ def split_range(n: int, parts: int):
     """Counts and starts of n points over `parts` blocks, the first n % parts one larger."""
     base, extra = divmod(int(n), int(parts))
     counts = [base + (1 if i < extra else 0) for i in range(parts)]
-    starts = [sum(counts[:i]) for i in range(parts)]
+    starts = [i * base + min(i, extra) for i in range(parts)]  # the running sum, in O(parts)
     return counts, starts
 
 
@@ -190,17 +190,70 @@ class Decomposition:
             recv = [self.nky * c * self.nz for c in self.x[0]]
         return send, recv
 
-    def bytes_sent(self, direction: str = "forward") -> int:
-        """Bytes this rank sends to other ranks in one transform (its own segment stays)."""
+    def bytes_sent(self, direction: str = "forward", keep: int | None = None) -> int:
+        """Bytes this rank sends to other ranks in one transform (its own segment stays);
+        with `keep`, in the truncated transposes of `band_limited(keep)`."""
         i = 0 if direction == "forward" else 1  # the inverse sends what the forward receives
+        band = None if keep is None else self.band(keep)
         total = 0
         if not self.slab:
-            c = self.row_counts()[i]
+            c = (self.row_counts() if band is None else band.row_counts())[i]
             total += sum(c) - c[self.col]
         if self.p1 > 1:
-            c = self.col_counts()[i]
+            c = (self.col_counts() if band is None else band.col_counts())[i]
             total += sum(c) - c[self.row]
         return total * COMPLEX_BYTES
+
+    def band(self, keep: int) -> "BandGeometry":
+        return BandGeometry(self, keep)
+
+
+def kept_runs(start: int, count: int, n: int, keep: int):
+    """The runs (first global index, length) of the FFT-ordered index range [start,
+    start + count) whose wavenumber satisfies |k| <= keep (indices 0..keep, n-keep..n-1)."""
+    runs = []
+    for lo, hi in ((0, keep + 1), (n - keep, n)):
+        a, b = max(start, lo), min(start + count, hi)
+        if b > a:
+            runs.append((a, b - a))
+    return runs
+
+
+class BandGeometry:
+    """Which rows and planes the truncated transposes of band-limited fields (|k_y|, |k_z|
+    <= keep) move, and how many values: only kept k_z planes leave the row stage, only kept
+    k_y rows of those the column stage (slab: both at once).
+
+    The pencil's column stage sends each k_y block's rows straight from the y-transformed
+    buffer, so it moves one contiguous run per block: from its first to its last kept row
+    (the same as the kept rows, except for a middle block that straddles the discarded rows
+    between k_y = keep and N - keep, possible with spherical truncation and P1 >= 3)."""
+
+    def __init__(self, geo: Decomposition, keep: int):
+        self.geo, self.keep = geo, int(keep)
+        n, m = geo.n, int(keep) + 1
+        self.m = m  # kept k_z planes 0..keep
+        #: kept k_z planes in each column's k_z block, kept k_y rows in each row's k_y block
+        self.zk = [max(0, min(s + c, m) - s) for c, s in zip(*geo.z)]
+        self.yruns = [kept_runs(s, c, n, self.keep) for c, s in zip(*geo.x)]
+        if not geo.slab and geo.p1 > 1:
+            self.yruns = [[(r[0][0], r[-1][0] + r[-1][1] - r[0][0])] if r else []
+                          for r in self.yruns]
+        self.yk = [sum(r[1] for r in runs) for runs in self.yruns]
+        self.mz = self.zk[geo.col] if not geo.slab else m   # kept k_z here
+        self.ky = self.yk[geo.row]                          # kept k_y rows here
+        #: local offsets (in this rank's k_y block) and lengths of the kept rows
+        self.local_runs = [(a - geo.ky0, c) for a, c in self.yruns[geo.row]]
+
+    def row_counts(self):
+        g = self.geo
+        return [g.ny * g.nx * c for c in self.zk], [c * g.nx * self.mz for c in g.y[0]]
+
+    def col_counts(self):
+        g = self.geo
+        if g.slab:
+            return [g.nx * k * self.m for k in self.yk], [c * self.ky * self.m for c in g.x[0]]
+        return [k * g.nx * self.mz for k in self.yk], [self.ky * c * self.mz for c in g.x[0]]
 
 
 def transpose_buffer_points(n: int, ranks: int, layout: str = "auto", grid=None,
@@ -210,18 +263,50 @@ def transpose_buffer_points(n: int, ranks: int, layout: str = "auto", grid=None,
     kind, pg = resolve_grid(n, ranks, layout, grid)
     if kind == "serial":
         return 0
-    ranks_ = range(ranks) if rank is None else [rank]
-    return max(Decomposition(n, pg, r).buffer_points() for r in ranks_)
+    # every buffer grows with the block sizes, and rank 0 holds the largest ones
+    return Decomposition(n, pg, 0 if rank is None else rank).buffer_points()
 
 
 def transpose_bytes_sent(n: int, ranks: int, layout: str = "auto", grid=None,
-                         rank: int | None = None, direction: str = "forward") -> int:
-    """Bytes a rank sends per transform (rank None: the largest over the ranks)."""
+                         rank: int | None = None, direction: str = "forward",
+                         keep: int | None = None) -> int:
+    """Bytes a rank sends per transform (rank None: the largest over the ranks); with `keep`,
+    per truncated transform of a field band-limited to |k_y|, |k_z| <= keep."""
     kind, pg = resolve_grid(n, ranks, layout, grid)
     if kind == "serial":
         return 0
-    ranks_ = range(ranks) if rank is None else [rank]
-    return max(Decomposition(n, pg, r).bytes_sent(direction) for r in ranks_)
+    if keep is not None and 2 * keep + 1 >= n:
+        keep = None  # nothing to prune (band_limited returns the full transforms)
+    if rank is not None:
+        return Decomposition(n, pg, rank).bytes_sent(direction, keep)
+    return int(bytes_sent_per_rank(n, pg, direction, keep).max())
+
+
+def bytes_sent_per_rank(n: int, grid, direction: str = "forward", keep: int | None = None):
+    """Bytes every rank [p, q] of a P1 x P2 grid sends in one transform (truncated with
+    `keep`): `Decomposition.bytes_sent` for all ranks at once, in O(P1 + P2) rather than
+    O(P1 P2 (P1 + P2)) (a run on thousands of ranks). Each rank sends all its values but the
+    ones it keeps: forward, rows of its x block to the other k_y blocks (and first the other
+    k_z planes, pencil); the inverse sends back what the forward received."""
+    p1, p2 = (int(g) for g in grid)
+    nh = n // 2 + 1
+    xs = np.array(split_range(n, p1)[0])
+    ys = np.array(split_range(n, p2)[0])
+    if keep is None:
+        yk = xs                                       # k_y rows moved per k_y block
+        zk = np.array(split_range(nh, p2)[0]) if p2 > 1 else np.array([nh])
+    else:
+        band = Decomposition(n, (p1, p2), 0).band(keep)
+        yk = np.array(band.yk)
+        zk = np.array(band.zk) if p2 > 1 else np.array([band.m])
+    nx, ny, nz, ky = xs[:, None], ys[None, :], zk[None, :], yk[:, None]
+    total = np.zeros((p1, p2), dtype=np.int64)
+    forward = direction == "forward"
+    if p2 > 1:  # row stage: k_z planes between the ranks of a row
+        total += ny * nx * (zk.sum() - nz) if forward else nx * nz * (n - ny)
+    if p1 > 1:  # column stage (slab: the only one)
+        total += nx * nz * (yk.sum() - ky) if forward else ky * nz * (n - nx)
+    return total * COMPLEX_BYTES
 
 
 # ---------------------------------------------------------------------------------------------
@@ -297,6 +382,8 @@ class DistributedLayout:
 
         b = self._buffers
         real = fft.empty_real(self.phys_shape)  # planning target only; callers' arrays are used
+        self._real, self._plan = real, plan
+        self._band = {}
         cdt = MPI.C_DOUBLE_COMPLEX
         if geo.slab:
             self._r2c = plan("r2c", real, b["half"], (1, 2))
@@ -372,6 +459,15 @@ class DistributedLayout:
                 np.copyto(dst, seg)
         self._run_into(self._c2r, b["half"], phys)
         return phys
+
+    def band_limited(self, keep: int):
+        """Transforms of fields zero outside |k_y|, |k_z| <= keep, with truncated transposes
+        (`DistributedBandTransforms`); the layout itself when nothing can be skipped."""
+        if 2 * keep + 1 >= self.n:
+            return self
+        if keep not in self._band:
+            self._band[keep] = DistributedBandTransforms(self, keep)
+        return self._band[keep]
 
     # pyFFTW executes only on arrays with the planned strides and alignment; a caller's array
     # that differs (a strided view, an odd offset) goes through a spare copy made on first need
@@ -498,6 +594,178 @@ class DistributedLayout:
             f"pencil layout {self.proc_grid[0]}x{self.proc_grid[1]}"
         return (f"{name}, {self.n}^3 points on {self.size} ranks, local Fourier block "
                 f"{'up to ' if uneven else ''}{block}")
+
+
+def _vspec_at(buf, counts, displs, datatype):
+    """An Alltoallv buffer argument with explicit displacements."""
+    return [buf, (tuple(int(c) for c in counts), tuple(int(d) for d in displs)), datatype]
+
+
+def _leading(buf, shape):
+    """The leading part of a contiguous buffer, as an array of `shape`."""
+    return buf.reshape(-1)[:math.prod(shape)].reshape(shape)
+
+
+class DistributedBandTransforms:
+    """Pruned transforms with truncated transposes for fields band-limited to |k_y|, |k_z| <=
+    K (the dealiased fields; see `serial_layout.BandTransforms` for the contract: `forward`
+    defines only the kept modes, `inverse` needs zeros outside them).
+
+    Only kept k_z planes enter the y transforms and the row transpose, only kept k_y rows of
+    those the column transpose and the x transforms (slab: one transpose of the kept (k_y,
+    k_z) lines). For the 2/3 rule that moves 2/3 (pencil row stage) and 4/9 (column stage,
+    slab) of the values of the full transposes. The layout's buffers are reused (leading
+    parts of them): no memory is added. Discarded rows and planes are zeroed before each
+    inverse y and z transform, since the full transforms share the buffers."""
+
+    def __init__(self, layout, keep: int):
+        from mpi4py import MPI
+
+        geo = layout.geometry
+        band = self.band = geo.band(keep)
+        self.layout, self.keep = layout, int(keep)
+        n, m, nx = geo.n, band.m, geo.nx
+        b, plan, cdt = layout._buffers, layout._plan, MPI.C_DOUBLE_COMPLEX
+        half = b["half"]
+
+        def plan_if(kind, a, axes):
+            return plan(kind, a, a, axes) if a.size else None
+
+        self._z_f = plan("r2c", layout._real, half, (2,))
+        self._z_b = plan("c2r", half, layout._real, (2,))
+        kept = kept_runs(0, n, n, self.keep)  # global k_y rows 0..K and N-K..N-1
+        if geo.slab:
+            mz = m
+            planes = half[:, :, :m]
+            self._y_f, self._y_b = plan_if("c2c_f", planes, (1,)), plan_if("c2c_b", planes, (1,))
+            send, recv = band.col_counts()
+            flat = b["send"].reshape(-1)[:sum(send)]
+            self._B = _leading(b["kx_line"], (n, band.ky, m))
+            self._pack, off = [], 0
+            for p_, runs in enumerate(band.yruns):
+                piece = flat[off:off + send[p_]].reshape(nx, band.yk[p_], m)
+                r0 = 0
+                for a, c in runs:
+                    self._pack.append((piece[:, r0:r0 + c], half[:, a:a + c, :m]))
+                    r0 += c
+                off += send[p_]
+            self._col_fwd = (_vspec(flat, send, cdt), _vspec(self._B, recv, cdt))
+            self._col_inv = (_vspec(self._B, recv, cdt), _vspec(flat, send, cdt))
+            # before the inverse y transform: the discarded k_y rows of the kept planes
+            self._zero = [half[:, kept[0][1]:kept[1][0], :m], half[:, :, m:]]
+        else:
+            mz = band.mz
+            rsend, rrecv = band.row_counts()
+            rflat = b["row_send"].reshape(-1)[:sum(rsend)]
+            self._Y = _leading(b["y_line"], (n, nx, mz))
+            self._row_pack = []
+            off = 0
+            for c, s0, zk in zip(geo.z[0], geo.z[1], band.zk):
+                if zk:
+                    piece = rflat[off:off + geo.ny * nx * zk].reshape(geo.ny, nx, zk)
+                    self._row_pack.append((piece, half[:, :, s0:s0 + zk].transpose(1, 0, 2)))
+                off += geo.ny * nx * zk
+            self._row_fwd = (_vspec(rflat, rsend, cdt), _vspec(self._Y, rrecv, cdt))
+            self._row_inv = (_vspec(self._Y, rrecv, cdt), _vspec(rflat, rsend, cdt))
+            self._y_f = plan_if("c2c_f", self._Y, (0,))
+            self._y_b = plan_if("c2c_b", self._Y, (0,))
+            self._B = _leading(b["kx_line"], (n, band.ky, mz))
+            csend, crecv = band.col_counts()
+            moved = [(a, c) for runs in band.yruns for a, c in runs]
+            if geo.p1 > 1:
+                cflat = b["col_recv"].reshape(-1)[:sum(crecv)]
+                displs = [runs[0][0] * nx * mz if runs else 0 for runs in band.yruns]
+                pieces = _segments(cflat, crecv, [(band.ky, c, mz) for c in geo.x[0]])
+                self._col_unpack = [(self._B[s0:s0 + c], seg.transpose(1, 0, 2))
+                                    for seg, s0, c in zip(pieces, geo.x[1], geo.x[0])]
+                self._col_fwd = (_vspec_at(self._Y, csend, displs, cdt), _vspec(cflat, crecv, cdt))
+                self._col_inv = (_vspec(cflat, crecv, cdt), _vspec_at(self._Y, csend, displs, cdt))
+            else:  # the k_y block is the whole axis: nothing to move, the kept runs are copied
+                self._col_unpack, r0 = [], 0
+                for a, c in moved:
+                    self._col_unpack.append((self._B[:, r0:r0 + c], self._Y[a:a + c].transpose(1, 0, 2)))
+                    r0 += c
+            # rows of the y buffer that no run covers are zeroed before the inverse y transform
+            covered = np.zeros(n + 1, bool)  # with a covered sentinel at the end
+            covered[n] = True
+            for a, c in moved:
+                covered[a:a + c] = True
+            gaps, first = [], None
+            for i in range(n + 1):
+                if not covered[i] and first is None:
+                    first = i
+                elif covered[i] and first is not None:
+                    gaps.append(self._Y[first:i])
+                    first = None
+            self._zero = gaps + [half[:, :, m:]]
+        self._x_f = plan_if("c2c_f", self._B, (0,))
+        self._x_b = plan_if("c2c_b", self._B, (0,))
+        # this rank's kept k_y rows: (offset in the spectral block, offset in B, count)
+        self._spec_runs, r0 = [], 0
+        for lo, c in band.local_runs:
+            self._spec_runs.append((lo, r0, c))
+            r0 += c
+        self._mz = mz
+
+    def bytes_moved_per_transform(self, direction: str = "forward") -> int:
+        return self.layout.geometry.bytes_sent(direction, self.keep)
+
+    def forward(self, phys: np.ndarray, spec: np.ndarray) -> np.ndarray:
+        lay, geo, mz = self.layout, self.layout.geometry, self._mz
+        half = lay._buffers["half"]
+        lay._run_from(self._z_f, phys, half)
+        if geo.slab:
+            if self._y_f is not None:
+                self._y_f()
+            for dst, src in self._pack:
+                np.copyto(dst, src)
+            lay.comm.Alltoallv(*self._col_fwd)
+        else:
+            for dst, src in self._row_pack:
+                np.copyto(dst, src)
+            lay.row_comm.Alltoallv(*self._row_fwd)
+            if self._y_f is not None:
+                self._y_f()
+            if geo.p1 > 1:
+                lay.col_comm.Alltoallv(*self._col_fwd)
+            for dst, src in self._col_unpack:
+                np.copyto(dst, src)
+        if self._x_f is not None:
+            self._x_f()
+        for lo, r0, c in self._spec_runs:
+            np.copyto(spec[:, lo:lo + c, :mz], self._B[:, r0:r0 + c])
+        return spec
+
+    def inverse(self, spec: np.ndarray, phys: np.ndarray) -> np.ndarray:
+        lay, geo, mz = self.layout, self.layout.geometry, self._mz
+        half = lay._buffers["half"]
+        for lo, r0, c in self._spec_runs:
+            np.copyto(self._B[:, r0:r0 + c], spec[:, lo:lo + c, :mz])
+        if self._x_b is not None:
+            self._x_b()
+        for z in self._zero:
+            z[...] = 0.0
+        if geo.slab:
+            lay.comm.Alltoallv(*self._col_inv)
+            for src, dst in self._pack:
+                np.copyto(dst, src)
+            if self._y_b is not None:
+                self._y_b()
+        else:
+            if geo.p1 > 1:
+                for dst, src in self._col_unpack:
+                    np.copyto(src, dst)
+                lay.col_comm.Alltoallv(*self._col_inv)
+            else:
+                for dst, src in self._col_unpack:
+                    np.copyto(src, dst)
+            if self._y_b is not None:
+                self._y_b()
+            lay.row_comm.Alltoallv(*self._row_inv)
+            for src, dst in self._row_pack:
+                np.copyto(dst, src)
+        lay._run_into(self._z_b, half, phys)
+        return phys
 
 
 def make_distributed_layout(n: int, length: float, kind: str = "auto", grid=None, comm=None,

@@ -60,6 +60,8 @@ class SerialLayout:
                              backend=backend)
         self._inv = fft.Plan("c2r", self.scratch, self._rbuf, axes=(0, 1, 2), threads=fft_threads,
                              backend=backend)
+        self._plan_args = {"threads": fft_threads, "backend": backend}
+        self._band = {}
 
     # --- transforms (unnormalised; the inverse destroys its input) -------------------------
     def forward(self, phys: np.ndarray, spec: np.ndarray) -> np.ndarray:
@@ -67,6 +69,15 @@ class SerialLayout:
 
     def inverse(self, spec: np.ndarray, phys: np.ndarray) -> np.ndarray:
         return self._inv(spec, phys)
+
+    def band_limited(self, keep: int):
+        """Transforms of fields that are zero outside |k_y|, |k_z| <= keep (`BandTransforms`);
+        the layout itself when nothing can be skipped."""
+        if 2 * keep + 1 >= self.n:
+            return self
+        if keep not in self._band:
+            self._band[keep] = BandTransforms(self, keep)
+        return self._band[keep]
 
     # --- reductions (identity on one process) ---------------------------------------------
     def sum(self, x):
@@ -94,3 +105,58 @@ class SerialLayout:
 
     def summary(self) -> str:
         return f"serial layout, {self.n}^3 points on 1 process"
+
+
+class BandTransforms:
+    """Pruned 3-D transforms for fields band-limited to the box |k_y|, |k_z| <= K (any k_x),
+    as dealiased fields are (the 2/3 rule keeps K = (N-1)//3): the 3-D transform is done
+    axis by axis and every 1-D transform whose input is known to be zero, or whose output is
+    discarded, is skipped (FFT pruning, Markel 1971, IEEE Trans. Audio Electroacoust. 19(4),
+    305-311, applied here line by line rather than inside one 1-D transform).
+
+        inverse: c2c along x on the lines (k_y, k_z) in the box only (a 4/9 share for the 2/3
+                 rule), c2c along y on the planes k_z <= K only (2/3), c2r along z on all;
+        forward: r2c along z on all, c2c along y on the planes k_z <= K, c2c along x on the
+                 lines in the box.
+
+    `forward` leaves the modes outside the box undefined: callers keep only dealiased modes
+    (the consumers of the nonlinear term write zero there without reading). `inverse` needs
+    its input zero outside the box and destroys it, like the full c2r. The retained values
+    equal the full transforms to round-off (tests/test_pruned_transforms.py)."""
+
+    def __init__(self, layout, keep: int):
+        n, k = layout.n, int(keep)
+        self.keep = k
+        self.n = n
+        c, r, args = layout.scratch, layout._rbuf, layout._plan_args
+        m = k + 1
+        self._m = m
+        self._z_f = fft.Plan("r2c", r, c, axes=(2,), **args)
+        self._z_b = fft.Plan("c2r", c, r, axes=(2,), **args)
+        planes = c[:, :, :m]
+        self._y_f = fft.Plan("c2c_f", planes, planes, axes=(1,), **args)
+        self._y_b = fft.Plan("c2c_b", planes, planes, axes=(1,), **args)
+        # the kept k_y rows: 0..K and N-K..N-1, two blocks of lines along x
+        self._rows = (slice(0, m), slice(n - k, n))
+        self._x_f, self._x_b = [], []
+        for rows in self._rows:
+            lines = c[:, rows, :m]
+            self._x_f.append(fft.Plan("c2c_f", lines, lines, axes=(0,), **args))
+            self._x_b.append(fft.Plan("c2c_b", lines, lines, axes=(0,), **args))
+
+    def forward(self, phys: np.ndarray, spec: np.ndarray) -> np.ndarray:
+        self._z_f(phys, spec)
+        planes = spec[:, :, :self._m]
+        self._y_f(planes, planes)
+        for rows, plan in zip(self._rows, self._x_f):
+            lines = spec[:, rows, :self._m]
+            plan(lines, lines)
+        return spec
+
+    def inverse(self, spec: np.ndarray, phys: np.ndarray) -> np.ndarray:
+        for rows, plan in zip(self._rows, self._x_b):
+            lines = spec[:, rows, :self._m]
+            plan(lines, lines)
+        planes = spec[:, :, :self._m]
+        self._y_b(planes, planes)
+        return self._z_b(spec, phys)

@@ -15,7 +15,8 @@ from numba import njit, prange
 
 # ---------------------------------------------------------------------------------------------
 # Dealiasing masks (Orszag 1971 two-thirds rule; Patterson & Orszag 1971 spherical truncation
-# used together with phase shifting). Mode 0: cubic |k_i| < N/3; mode 1: |k|^2 <= kc2.
+# used together with phase shifting). Mode 0: cubic |k_i| < N/3; mode 1: |k|^2 < kc2, strict,
+# so that no doubly aliased triad survives on the sphere's edge when 3 divides N.
 # ---------------------------------------------------------------------------------------------
 
 
@@ -27,7 +28,7 @@ def _keep(ix, iy, iz, n, mode, kc2):
         return False
     if mode == 0:
         return 3 * abs(ix) < n and 3 * abs(iy) < n and 3 * abs(iz) < n
-    return ix * ix + iy * iy + iz * iz <= kc2
+    return ix * ix + iy * iy + iz * iz < kc2
 
 
 @njit(parallel=True, cache=True)
@@ -105,11 +106,13 @@ def accumulate_masked(dst, src, a, b, ikx, iky, ikz, n, mode, kc2, sx, sy, sz):
 
 
 @njit(parallel=True, cache=True)
-def scale_mask_project(uh, kx, ky, kz, ikx, iky, ikz, n, mode, kc2, b):
-    """uh <- b P(k) uh inside the dealiasing region, 0 outside: one fused pass that finishes a
-    nonlinear term whose forward transforms were written straight into uh."""
+def scale_mask_project(uh, kx, ky, kz, ikx, iky, ikz, n, mode, kc2, b, sx, sy, sz):
+    """uh <- b conj(s) P(k) uh inside the dealiasing region, 0 outside: one fused pass that
+    finishes a nonlinear term whose forward transforms were written straight into uh (s: the
+    phase factors of the grid shift it was evaluated on; ones for the unshifted grid)."""
     for i in prange(uh.shape[1]):
         for j in range(uh.shape[2]):
+            sxy = sx[i] * sy[j]
             for l in range(uh.shape[3]):
                 k2 = kx[i] * kx[i] + ky[j] * ky[j] + kz[l] * kz[l]
                 if k2 == 0.0 or not _keep(ikx[i], iky[j], ikz[l], n, mode, kc2):
@@ -121,9 +124,10 @@ def scale_mask_project(uh, kx, ky, kz, ikx, iky, ikz, n, mode, kc2, b):
                 a1 = uh[1, i, j, l]
                 a2 = uh[2, i, j, l]
                 d = (kx[i] * a0 + ky[j] * a1 + kz[l] * a2) / k2
-                uh[0, i, j, l] = b * (a0 - kx[i] * d)
-                uh[1, i, j, l] = b * (a1 - ky[j] * d)
-                uh[2, i, j, l] = b * (a2 - kz[l] * d)
+                bs = b * (sxy * sz[l]).conjugate()
+                uh[0, i, j, l] = bs * (a0 - kx[i] * d)
+                uh[1, i, j, l] = bs * (a1 - ky[j] * d)
+                uh[2, i, j, l] = bs * (a2 - kz[l] * d)
 
 
 @njit(parallel=True, cache=True)

@@ -81,8 +81,12 @@ class FluidConfig(Section):
                      "solenoidal field with E(k) ∝ k⁴ exp(−2(k/k_p)²); file: an eddybox field "
                      "snapshot or checkpoint, truncated or zero-padded to this N)", base=InitialParams)
     frozen = Flag(False, "keep the velocity field fixed (particle-only studies)")
-    dealias = Choice("two-thirds", ("two-thirds", "phase-shift"), "dealiasing method: two-thirds "
-                     "(Orszag 1971) or phase-shift with spherical truncation (Patterson & Orszag 1971)")
+    dealias = Choice("two-thirds", ("two-thirds", "phase-shift", "stage-shift"), "dealiasing: "
+                     "two-thirds (Orszag 1971), phase-shift (two products per stage, spherical "
+                     "truncation, Patterson & Orszag 1971) or stage-shift (one product per stage on "
+                     "stage-dependent random shifts, Rogallo 1981; time.scheme rk4 or rk2); the "
+                     "spherical options keep |k| < √2 N/3, so the same k_max needs √2 fewer points "
+                     "per direction; use time.cfl divided by √2 for the same time step")
 
     def summary(self):
         return (f"nu={self.viscosity:g}, init={self.initial.summary()}"
@@ -310,6 +314,13 @@ class RunConfig(Section):
 # --- rules across sections ----------------------------------------------------------------------
 def _cross_checks(c: RunConfig):
     n = c.grid.points
+    scheme = SCHEMES[c.time.scheme]
+    if c.fluid.dealias == "stage-shift" and not scheme.stage_shifts:
+        able = ", ".join(k for k, v in SCHEMES.items() if v.stage_shifts)
+        raise ConfigError(f"fluid.dealias: 'stage-shift' cancels aliasing across the stages of "
+                          f"a step, which time.scheme {scheme.name!r} cannot do (no stage shifts "
+                          f"make its weights cancel); use time.scheme {able}, or fluid.dealias "
+                          "two-thirds or phase-shift")
     f = c.forcing
     if hasattr(f, "band"):
         if f.band < 1.0:

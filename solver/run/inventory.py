@@ -11,6 +11,7 @@ import re
 import numpy as np
 
 from eddybox.solver.errors import ConfigError
+from eddybox.solver.fluid.navier_stokes import DEALIASING
 from eddybox.solver.fluid.timestepping import SCHEMES
 
 COMPLEX, REAL = 16, 8
@@ -41,8 +42,9 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
            "fft_scratch": spec * COMPLEX,
            "physical_velocity": 3 * phys * REAL,
            "physical_vorticity": 3 * phys * REAL}
-    if cfg.fluid.dealias == "phase-shift":
-        inv["phase_shift_copy"] = 3 * spec * COMPLEX
+    extra = DEALIASING[cfg.fluid.dealias].extra_arrays
+    if extra:
+        inv["phase_shift_copy"] = extra * spec * COMPLEX
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import transpose_buffer_points
 
@@ -50,7 +52,7 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
     p = cfg.particles
     if p.sets:
         from eddybox.particles.migration import ghost_field_bytes
-        from eddybox.particles.system import bytes_per_particle
+        from eddybox.particles.system import bytes_per_particle, interpolation_copy_bytes
 
         count = sum(s.count for s in p.sets) if particles_per_rank is None else particles_per_rank
         inv["particles"] = bytes_per_particle() * count
@@ -58,6 +60,8 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
         g = ghost_field_bytes(n, order, ranks, layout, cfg.parallel.grid)
         if g:
             inv["ghosted_velocity"] = g
+        inv["interpolation_copy"] = interpolation_copy_bytes(n, order, ranks, layout,
+                                                             cfg.parallel.grid)
     return inv
 
 

@@ -17,9 +17,10 @@ INTEGRAL_OVER_FORCING_WAVELENGTH = 0.45
 
 
 def kmax(config) -> float:
-    n = config.grid.points
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
     k0 = 2 * math.pi / config.grid.length
-    return k0 * (math.sqrt(2) * n / 3 if config.fluid.dealias == "phase-shift" else n / 3)
+    return k0 * DEALIASING[config.fluid.dealias].kmax_index(config.grid.points)
 
 
 def forcing_target(config):

@@ -111,7 +111,7 @@ class Simulation:
         self.nu = c.fluid.viscosity
         self.dx = c.grid.length / c.grid.points
         self.frozen = c.fluid.frozen
-        self.nl = NonlinearTerm(self.layout, c.fluid.dealias)
+        self.nl = NonlinearTerm(self.layout, c.fluid.dealias, seed=c.seed)
         self.scheme = SCHEMES[c.time.scheme](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
         # times given in large-eddy turnovers ('0.5 T_E') resolved once, from the config alone
@@ -125,12 +125,12 @@ class Simulation:
         self.wall_offset = 0.0
         self.last_checkpoint = None
         self.log.write(f"eddybox run: {config.summary()}")
-        bound = spectral_cfl_bound(SCHEMES[c.time.scheme])
+        bound = spectral_cfl_bound(SCHEMES[c.time.scheme], c.fluid.dealias)
         if c.time.cfl > bound:
             self.log.write(f"warning: time.cfl = {c.time.cfl} is above {bound:.2f}, the "
                            "stability bound for pseudo-spectral advection; the run may become unstable")
-        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
-                       f"{c.fluid.dealias}; output {self.out}")
+        self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; "
+                       f"{self.nl.summary()}; output {self.out}")
 
         ck = restart_path = None
         if restart is not None:

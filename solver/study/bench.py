@@ -2,9 +2,15 @@
 
 Sections (each a function returning a dict of named figures):
   fluid      one RK4 step against the FFT floor (the same plans doing only the 36 real 3-D
-             transforms of a step), against a straightforward numpy.fft step with temporary
+             transforms of a step: the pruned ones the step uses, and the full ones), the step
+             with today's full transforms, a straightforward numpy.fft step with temporary
              arrays, and peak memory per grid point for RK4 and low-storage RK3
-  particles  order-8 interpolation of three components (eddybox.solver.study.bench_interp)
+  resolution the time to advance one large-eddy turnover at k_max eta = 1.5 and eps = 0.1 with
+             each dealiasing option at the N it needs, against the 2/3 rule with full
+             transforms (the default before pruning), and memory per resolved mode
+  particles  order-8 interpolation of three components (eddybox.solver.study.bench_interp):
+             today's kernel and the interleaved copies; and one step of 10^6 particles
+             (order 8, tau_p = 0.05) against the 128^3 fluid step of the same run
   pairs      pair statistics against a cKDTree + numpy pipeline (eddybox.solver.study.bench_pairs)
   scaling    strong scaling over MPI ranks and bytes moved by the transposes
   estimate   accuracy of `eddybox estimate` against measured runs
@@ -22,6 +28,7 @@ import numpy as np
 from eddybox.solver.study.calibration import (
     benchmark_simulation,
     best_time,
+    best_times,
     calibrate,
     calibration_path,
     measure_fluid_points,
@@ -71,22 +78,32 @@ def numpy_reference_step(uh, kx, ky, kz, nu, dt, n):
 
 def _fluid_point(n, repeats, with_numpy):
     sim = benchmark_simulation(n)
+    full = benchmark_simulation(n, pruned=False)
     sim.advance()  # compile kernels, warm caches
-    t_step = best_time(sim.advance, repeats)
+    full.advance()
     lay, nl = sim.layout, sim.nl
 
-    def floor():
-        for _ in range(4):
-            for c in range(3):
-                lay.inverse(lay.scratch, nl.u[c])
-            for c in range(3):
-                lay.inverse(lay.scratch, nl.w[c])
-            for c in range(3):
-                lay.forward(nl.w[c], lay.scratch)
+    def floor(inverse, forward):
+        def run():
+            for _ in range(4):
+                for c in range(3):
+                    inverse(lay.scratch, nl.u[c])
+                for c in range(3):
+                    inverse(lay.scratch, nl.w[c])
+                for c in range(3):
+                    forward(nl.w[c], lay.scratch)
+        return run
 
-    t_floor = best_time(floor, repeats)
-    out = {f"step_seconds_{n}": t_step, f"fft_floor_seconds_{n}": t_floor,
-           f"step_over_fft_floor_{n}": t_step / t_floor}
+    t = best_times({"step": sim.advance, "step_full": full.advance,
+                      "floor_pruned": floor(nl._inv, nl._fwd),
+                      "floor_full": floor(lay.inverse, lay.forward)}, repeats)
+    out = {f"step_seconds_{n}": t["step"], f"step_seconds_full_transforms_{n}": t["step_full"],
+           f"pruned_step_speedup_{n}": t["step_full"] / t["step"],
+           f"fft_floor_pruned_seconds_{n}": t["floor_pruned"],
+           f"fft_floor_full_seconds_{n}": t["floor_full"],
+           f"step_over_fft_floor_{n}": t["step"] / t["floor_pruned"],
+           f"step_over_full_fft_floor_{n}": t["step"] / t["floor_full"]}
+    t_step = t["step"]
     if with_numpy:
         uh = sim.uh.copy()
         t_np = best_time(lambda: numpy_reference_step(uh, lay.kx, lay.ky, lay.kz, sim.nu, 1e-3, n),
@@ -112,7 +129,9 @@ def bench_fluid(quick=False):
     for n in sizes:
         out.update(_fluid_point(n, 2 if quick else 3, with_numpy=True))
     big = sizes[-1]
+    out["fft_floor"] = "pruned: the 36 transforms of the step as it runs them (band-limited)"
     out["step_over_fft_floor"] = out[f"step_over_fft_floor_{big}"]
+    out["step_over_full_fft_floor"] = out[f"step_over_full_fft_floor_{big}"]
     out["step_speedup_vs_numpy"] = out[f"step_speedup_vs_numpy_{big}"]
     out["bytes_per_point_rk4"] = peak_bytes_per_point(big, "rk4")
     out["bytes_per_point_rk3"] = peak_bytes_per_point(big, "rk3")
@@ -120,11 +139,108 @@ def bench_fluid(quick=False):
     return out
 
 
+#: the options of the resolution section: (dealias, pruned transforms)
+RESOLUTION_OPTIONS = {"two-thirds-full": ("two-thirds", False), "two-thirds": ("two-thirds", True),
+                      "phase-shift": ("phase-shift", True), "stage-shift": ("stage-shift", True),
+                      "stage-shift-full": ("stage-shift", False)}
+
+
+@register("resolution")
+def bench_resolution(quick=False, kmax_eta=1.5, eps=0.1):
+    """One large-eddy turnover at k_max eta = 1.5 and eps = 0.1 with each dealiasing option.
+
+    nu is fixed by the baseline: the 2/3 rule at N (128, or 64 with --quick) reaches k_max eta
+    = 1.5 at eps. Every other option runs at the smallest FFT-friendly N whose k_max reaches
+    the same (within 1 %). All take the same physical time step (the CFL step of the baseline:
+    the same k_max and u'), so the steps per turnover T_E = L/u' (u', L predicted from eps as
+    in `eddybox check`) are the same, and the time per turnover is steps x the measured step
+    time; the options' step times are measured side by side, repeats interleaved.
+    Memory per resolved mode: the solver's arrays (run.inventory) over the kept modes."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+    from eddybox.solver.run import scales
+    from eddybox.solver.run.config import validate
+    from eddybox.solver.run.inventory import predicted_inventory
+    from eddybox.solver.study.estimate import fft_friendly
+
+    n_ref = 64 if quick else 128
+    kmax = n_ref / 3.0
+    eta = kmax_eta / kmax
+    nu = (eta**4 * eps) ** (1.0 / 3.0)
+    sims, out = {}, {"kmax_eta": kmax_eta, "dissipation": eps, "viscosity": nu}
+    for name, (dealias, pruned) in RESOLUTION_OPTIONS.items():
+        method = DEALIASING[dealias]
+        n = n_ref if dealias == "two-thirds" else fft_friendly(0.99 * kmax / method.kmax_index(1))
+        sims[name] = benchmark_simulation(n, dealias=dealias, viscosity=nu, pruned=pruned)
+        sims[name].advance()
+        out[f"points_{name}"] = n
+        out[f"kmax_eta_{name}"] = method.kmax_index(n) * eta
+        cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}}).data
+        out[f"bytes_per_resolved_mode_{name}"] = (sum(predicted_inventory(cfg).values())
+                                                  / method.kept_modes(n))
+    t = best_times({k: s.advance for k, s in sims.items()}, 2 if quick else 3)
+    pred = scales.predicted(validate({"grid": {"points": n_ref}, "fluid": {"viscosity": nu},
+                                      "forcing": {"kind": "ou", "band": 2.0,
+                                                  "dissipation": eps}}).data)
+    u = pred["u_rms_estimate"]
+    turnover = scales.INTEGRAL_OVER_FORCING_WAVELENGTH * 2 * np.pi / 2.0 / u  # L/u', band 2
+    dt = 0.6 * (2 * np.pi / n_ref) / (6.0 * u)  # the default time.cfl, U_max = 6 u'
+    steps = turnover / dt
+    out["steps_per_turnover"] = steps
+    base = t["two-thirds-full"] * steps
+    for name in sims:
+        out[f"step_seconds_{name}"] = t[name]
+        out[f"seconds_per_turnover_{name}"] = t[name] * steps
+        out[f"speedup_vs_two_thirds_full_{name}"] = base / (t[name] * steps)
+    out["physics_check"] = ("tests/test_stage_shift.py: stage-shift 48^3 against the 2/3 rule at "
+                            "68^3 (same k_max), eps, Re_lambda, skewness, spectrum to 0.8 k_max "
+                            "within 2 %")
+    return out
+
+
 @register("particles")
 def bench_particles(quick=False):
     from eddybox.solver.study.bench_interp import bench_interpolation
 
-    return bench_interpolation(n_particles=2 * 10**5 if quick else 10**6, n=64 if quick else 128)
+    n, count = (64, 2 * 10**5) if quick else (128, 10**6)
+    out = bench_interpolation(n_particles=count, n=n)
+    out.update(particle_step_point(n, count))
+    return out
+
+
+def particle_step_point(n, count, order=8, tau_p=0.05):
+    """Seconds per step of the particles (inverse transform and interleaved copy of the
+    velocity, integrator, interpolations, and the re-sort by cell once in SORT_EVERY steps)
+    against the fluid step of the same run, measured step by step in turn over SORT_EVERY
+    steps per particle scheme: the run loop's (multistep ETD2, one interpolation per step)
+    and ETD2RK (two)."""
+    from eddybox.particles import integrator
+    from eddybox.particles.system import SCHEME, SORT_EVERY
+
+    sim = benchmark_simulation(n, particles=count, order=order, tau_p=tau_p)
+    sim.advance()  # compile, warm caches, the first (ETD2RK) particle step
+    parts = sim.particles
+    fluid, per_scheme = [], {}
+    for name in (SCHEME, "etd2rk"):
+        parts.scheme = integrator.PARTICLE_SCHEMES[name]()
+        times = per_scheme[name] = []
+        for _ in range(SORT_EVERY):  # one re-sort in every SORT_EVERY steps
+            t0 = time.perf_counter()
+            dt = sim.scheme.step(sim.uh, sim.forcing, sim._choose_dt, sim)
+            sim.forcing.end_step(sim, dt)
+            fluid.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            parts.advance(sim, dt)
+            times.append(time.perf_counter() - t0)
+            sim.t += dt
+            sim.step += 1
+    parts.scheme = integrator.PARTICLE_SCHEMES[SCHEME]()
+    t_fluid = float(np.median(fluid))
+    one, two = float(np.mean(per_scheme[SCHEME])), float(np.mean(per_scheme["etd2rk"]))
+    return {"particle_step_particles": count, "particle_step_grid": n,
+            "fluid_step_seconds": t_fluid, "particle_step_seconds": one,
+            "particle_step_seconds_two_interpolations": two,
+            "particle_step_over_fluid_step": one / t_fluid,
+            "particle_step_over_fluid_step_two_interpolations": two / t_fluid}
 
 
 @register("pairs")
@@ -197,9 +313,11 @@ def _mpi_step_seconds(n, ranks, repeats=3, layout="auto"):
         f"for _ in range({repeats}):\n"
         "    comm.Barrier(); t0 = time.perf_counter(); sim.advance(); comm.Barrier()\n"
         "    best = min(best, time.perf_counter() - t0)\n"
-        "moved = sim.layout.bytes_moved_per_transform() if hasattr(sim.layout, 'bytes_moved_per_transform') else 0\n"
+        "moved = sim.nl.bytes_moved_per_transform()\n"
+        "full = sim.layout.bytes_moved_per_transform() if hasattr(sim.layout, 'bytes_moved_per_transform') else 0\n"
+
         "if comm.rank == 0: print(json.dumps({'seconds': best, 'bytes_per_transform': moved,"
-        " 'layout': sim.layout.summary()}))\n")
+        " 'bytes_per_transform_full': full, 'layout': sim.layout.summary()}))\n")
     env = dict(os.environ, EDDYBOX_THREADS="1")
     mpiexec = os.path.join(os.path.dirname(sys.executable), "mpiexec")
     cmd = [mpiexec, "-n", str(ranks), sys.executable, "-c", code]
@@ -222,8 +340,12 @@ def bench_scaling(quick=False):
         out[f"step_seconds_{p}_ranks"] = t
         out[f"speedup_{p}_ranks"] = base / t
         out[f"efficiency_{p}_ranks"] = base / t / p
-        # 4 stages x 9 transforms per RK4 step
+        # 4 stages x 9 transforms per RK4 step, sent by rank 0: truncated transposes (what
+        # the step moves) and full ones (before pruning)
         out[f"transpose_bytes_per_step_{p}_ranks"] = 36 * res["bytes_per_transform"]
+        out[f"transpose_bytes_per_step_full_{p}_ranks"] = 36 * res["bytes_per_transform_full"]
+        if res["bytes_per_transform_full"]:
+            out[f"transpose_bytes_saved_{p}_ranks"] = 1 - res["bytes_per_transform"] / res["bytes_per_transform_full"]
     out["note_4_ranks"] = "4 ranks on 2 cores are oversubscribed: efficiency below 0.5 is expected"
     return out
 

@@ -7,7 +7,6 @@ measured on the same machine in the same call.
 """
 
 import math
-import time
 
 import numba
 import numpy as np
@@ -15,9 +14,12 @@ from numba import njit, prange
 
 from eddybox.particles.interpolation import (
     INTERPOLATION_ORDERS,
+    InterleavedField,
     cell_order,
     interpolate,
+    interpolate_interleaved,
 )
+from eddybox.solver.study.calibration import best_times
 
 __all__ = ["interpolate_numpy", "bench_interpolation"]
 
@@ -83,18 +85,6 @@ def _parallel_sum(a):
     return total
 
 
-def _best_times(timed, repeats):
-    """Best wall time of each callable; the repeats are interleaved so that a change in
-    machine load during the run affects all variants alike."""
-    best = dict.fromkeys(timed, math.inf)
-    for _ in range(repeats):
-        for name, fn in timed.items():
-            t0 = time.perf_counter()
-            fn()
-            best[name] = min(best[name], time.perf_counter() - t0)
-    return best
-
-
 def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_particles=2 * 10**5,
                         seed=2026):
     """Particles per second of the order-``order`` interpolation of a 3-component field.
@@ -122,6 +112,14 @@ def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_part
                                         rate if every stencil line came from memory with no
                                         reuse between particles (random order); sorted
                                         particles share lines and can beat it
+      interleaved_particles_per_second_float32 / _float64 / _float32_unsorted
+                                        the run loop's kernel (interpolate_interleaved) on a
+                                        single- (double-) precision interleaved copy, particles
+                                        in cell order (or random order)
+      interleaved_copy_seconds_float32  the copy itself (InterleavedField.fill), once per step
+      interleaved_speedup_vs_presorted  float32 rate / today's kernel on presorted particles
+      interleaved_max_relative_difference_float32 / _float64
+                                        max |interleaved - today's| / max |u|
     """
     stencil = INTERPOLATION_ORDERS[order]
     p = stencil.points
@@ -146,7 +144,20 @@ def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_part
     # read bandwidth: a parallel sum over an array far larger than the caches
     stream = np.ones(_STREAM_BYTES // _DOUBLE)
     _parallel_sum(stream[:_SUM_BLOCK])
-    best = _best_times({
+    copies = {dt.__name__: InterleavedField(field.shape, (0, 0, 0), (n, n, n), order, dt).fill(field)
+              for dt in (np.float32, np.float64)}
+    for name, c in copies.items():  # compile / warm up
+        results[name] = np.empty_like(out)
+        interpolate_interleaved(c, h, presorted[:64], order, results[name][:64])
+    results["float32_unsorted"] = np.empty_like(out)
+    best = best_times({
+        "float32": lambda: interpolate_interleaved(copies["float32"], h, presorted, order,
+                                                   results["float32"]),
+        "float64": lambda: interpolate_interleaved(copies["float64"], h, presorted, order,
+                                                   results["float64"]),
+        "float32_unsorted": lambda: interpolate_interleaved(copies["float32"], h, positions, order,
+                                                            results["float32_unsorted"]),
+        "copy": lambda: copies["float32"].fill(field),
         "default": lambda: interpolate(*args, positions, order, results["default"]),
         "unsorted": lambda: interpolate(*args, positions, order, results["unsorted"],
                                         cell_sort=False),
@@ -172,7 +183,19 @@ def bench_interpolation(n_particles=10**6, n=128, order=8, repeats=3, numpy_part
 
     rate = n_particles / best["default"]
     numpy_rate = m / best["numpy"]
-    return {
+    scale = float(np.abs(field).max())
+    interleaved = {
+        "interleaved_particles_per_second_float32": n_particles / best["float32"],
+        "interleaved_particles_per_second_float64": n_particles / best["float64"],
+        "interleaved_particles_per_second_float32_unsorted": n_particles / best["float32_unsorted"],
+        "interleaved_copy_seconds_float32": best["copy"],
+        "interleaved_speedup_vs_presorted": best["presorted"] / best["float32"],
+        "interleaved_max_relative_difference_float32":
+            float(np.abs(results["float32"] - results["presorted"]).max()) / scale,
+        "interleaved_max_relative_difference_float64":
+            float(np.abs(results["float64"] - results["presorted"]).max()) / scale,
+    }
+    return interleaved | {
         "n_particles": n_particles,
         "grid_points": n,
         "order": order,

@@ -31,16 +31,16 @@ def check_lines(cfg) -> list[str]:
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
                             "resolved; use more grid.points or a larger fluid.viscosity "
-                            f"(k_max eta >= 1 needs N >= {math.ceil(3 / p['eta'] * cfg.grid.length / (2 * math.pi))})")
+                            f"(k_max eta >= 1 needs N >= {_points_for(cfg, 1.0 / p['eta'])})")
     else:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
     from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 
-    bound = spectral_cfl_bound(SCHEMES[cfg.time.scheme])
+    bound = spectral_cfl_bound(SCHEMES[cfg.time.scheme], cfg.fluid.dealias)
     if cfg.time.cfl > bound:
         warnings.append(f"time.cfl = {cfg.time.cfl} is above {bound:.2f}, the stability bound of "
-                        f"{cfg.time.scheme} for pseudo-spectral advection; the run may become "
-                        "unstable (exit code 3)")
+                        f"{cfg.time.scheme} with {cfg.fluid.dealias} dealiasing for "
+                        "pseudo-spectral advection; the run may become unstable (exit code 3)")
     from eddybox.particles.physical import particle_lines
 
     plines, pwarn = particle_lines(cfg.particles, p)
@@ -55,9 +55,37 @@ def check_lines(cfg) -> list[str]:
     peak = sum(need.values())
     out += [f"  at the peak, with the largest temporary arrays and the process itself: "
             f"{human_bytes(peak)} of {human_bytes(machine_memory())} on this machine"]
+    out += cost_lines(cfg, total)
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
     return out
 
 
+def _points_for(cfg, kmax) -> int:
+    """The smallest N whose dealiased k_max reaches `kmax` with the config's dealiasing."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    k0 = 2 * math.pi / cfg.grid.length
+    return math.ceil(kmax / (k0 * DEALIASING[cfg.fluid.dealias].kmax_index(1)))
+
+
 def print_check(cfg):
     print("\n".join(check_lines(cfg)))
+
+
+def cost_lines(cfg, memory_bytes) -> list[str]:
+    """What a step costs with the chosen dealiasing: 3-D transforms and their pruned share, and
+    the memory per resolved (kept) mode."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+    from eddybox.solver.study.calibration import STAGES
+    from eddybox.solver.study.estimate import pruned_share
+
+    n = cfg.grid.points
+    method = DEALIASING[cfg.fluid.dealias]
+    evaluations, share = method.evaluations, pruned_share(method.name, n)
+    stages = STAGES[cfg.time.scheme]
+    kept = method.kept_modes(n)
+    return ["", f"cost per step: {stages} stages x {evaluations} product(s) x 9 = "
+                f"{stages * evaluations * 9} real 3-D transforms of {n}^3, pruned to {share:.0%} of "
+                f"the full transform work ({method.summary})",
+            f"resolved modes: {kept} (k_max = {method.kmax_index(n):.4g} x 2 pi/L), "
+            f"{memory_bytes / kept:.0f} bytes per resolved mode"]

@@ -34,26 +34,30 @@ DEFAULT_LATENCY = 2.0e-6
 MAX_RANKS = 1 << 24
 
 
-def transpose_bytes_per_transform(n, ranks, layout="auto"):
+def transpose_bytes_per_transform(n, ranks, layout="auto", keep=None):
     """Bytes each rank sends per 3-D transform and the messages it takes (the layout's own
-    buffer arithmetic, uneven blocks included)."""
+    buffer arithmetic, uneven blocks included; with `keep`, the truncated transposes of
+    dealiased fields)."""
     if ranks == 1:
         return 0.0, 0
     from eddybox.solver.fluid.mpi_layout import resolve_grid, transpose_bytes_sent
 
     kind, (p1, p2) = resolve_grid(n, ranks, layout)
-    return float(transpose_bytes_sent(n, ranks, kind)), (p1 - 1) + (p2 - 1)
+    return float(transpose_bytes_sent(n, ranks, kind, keep=keep)), (p1 - 1) + (p2 - 1)
 
 
 def step_time(cal, n, ranks, scheme, layout="auto", particles=0, order=8, bandwidth=DEFAULT_BANDWIDTH,
-              latency=DEFAULT_LATENCY, pairs_per_step=0.0):
+              latency=DEFAULT_LATENCY, pairs_per_step=0.0, dealias="two-thirds"):
     """Predicted seconds per step and its parts."""
     m = cal["fluid_model"]
     s = STAGES[scheme]
     n3 = float(n) ** 3
-    parts = {"fft": m["a"] * s * 9 * n3 * math.log2(n3) / ranks, "local": m["b"] * s * n3 / ranks}
-    nbytes, msgs = transpose_bytes_per_transform(n, ranks, layout)
-    parts["transposes"] = s * 9 * (nbytes / bandwidth + msgs * latency) if ranks > 1 else 0.0
+    fft_factor, evaluations, keep = dealias_costs(dealias, n)
+    s_eval = s * evaluations
+    parts = {"fft": m["a"] * s_eval * fft_factor * 9 * n3 * math.log2(n3) / ranks,
+             "local": m["b"] * s_eval * n3 / ranks}
+    nbytes, msgs = transpose_bytes_per_transform(n, ranks, layout, keep)
+    parts["transposes"] = s_eval * 9 * (nbytes / bandwidth + msgs * latency) if ranks > 1 else 0.0
     if particles:
         c = cal.get("interp_seconds_per_particle", 1e-6) * (order / 8.0) ** 3
         parts["particles"] = 2 * particles / ranks * c + 3 * m["a"] * n3 * math.log2(n3) / ranks
@@ -130,7 +134,8 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
         pairs_per_step = npairs / max(1.0, pr.every / dt)
     order = cfg.particles.interpolation
     t, parts = step_time(cal, n, ranks, cfg.time.scheme, "auto",
-                         total_particles if sets else 0, order, bw, lat, pairs_per_step)
+                         total_particles if sets else 0, order, bw, lat, pairs_per_step,
+                         cfg.fluid.dealias)
     threads = cal.get("threads", 1)
     return {"points": n, "ranks": ranks, "layout": layout, "particles": total_particles if sets else 0,
             "memory_per_rank": sum(inv.values()) + cal.get("memory_overhead_bytes", 0.0),
@@ -144,6 +149,9 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
 def print_estimate(args):
     from eddybox.solver.run import config as cfgmod
 
+    if args.points is None:
+        raise ConfigError("--points: give the grid points N (or --kmax-eta to let estimate choose "
+                          "N and the dealiasing)")
     cfg = cfgmod.load(args.config, args.set)
     job = job_options(args) if getattr(args, "job_script", None) else None
     cal = load_calibration(args.calibration) if args.calibration else None
@@ -204,3 +212,115 @@ def write_job(args, cfg, e, limit, forced):
     print(f"job script ({args.scheduler}) written to {path}: {job.nodes} node(s), {job.ranks} "
           f"rank(s), limit {job.limit_seconds} s, time.walltime {job.budget_seconds} s; submit "
           "it once, it resubmits itself until the run is done")
+
+
+# ---------------------------------------------------------------------------------------------
+# The dealiasing options: their cost, and the cheapest one for a target k_max eta
+# ---------------------------------------------------------------------------------------------
+def pruned_share(dealias, n) -> float:
+    """The share of the full 3-D transform work that the pruned transforms of a dealiasing
+    option do at N (`serial_layout.BandTransforms`): their three 1-D stages run on all lines,
+    on the kept k_z planes (f_z = (keep+1)/(N/2+1)) and on the kept (k_y, k_z) lines (f_z f_y,
+    f_y = (2 keep+1)/N), so (1 + f_z + f_z f_y)/3 (1 when nothing is pruned)."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    k = DEALIASING[dealias].axis_index(n)
+    if 2 * k + 1 >= n:
+        return 1.0
+    fz, fy = (k + 1) / (n // 2 + 1), (2 * k + 1) / n
+    return (1 + fz + fz * fy) / 3
+
+
+def dealias_costs(dealias, n):
+    """(fft_factor, evaluations, keep) of a dealiasing option at N: its transform work relative
+    to the 2/3 rule's pruned transforms (with which the calibration is measured), the products
+    per stage, and the kept band |k_i| <= keep."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    method = DEALIASING[dealias]
+    return (pruned_share(dealias, n) / pruned_share("two-thirds", n), method.evaluations,
+            method.axis_index(n))
+
+
+def fft_friendly(n_min: float) -> int:
+    """The smallest even N >= n_min whose only prime factors are 2, 3, 5 and 7 (sizes the
+    FFT libraries handle fastest)."""
+    n = max(4, int(math.ceil(n_min)))
+    while True:
+        if n % 2 == 0:
+            m = n
+            for p in (2, 3, 5, 7):
+                while m % p == 0:
+                    m //= p
+            if m == 1:
+                return n
+        n += 1
+
+
+def resolution_options(cfg, kmax_eta: float, ranks: int = 1, cal=None, bandwidth=None,
+                       latency=None):
+    """For each dealiasing option (with the config's scheme, and RK4 where that scheme cannot
+    take it): the smallest FFT-friendly N that reaches k_max eta >= kmax_eta at the config's
+    target dissipation, and the predicted steps, seconds, core-hours and memory to the end time.
+
+    time.cfl keeps the config's stability margin: divided by sqrt(2) with spherical truncation
+    (whose |k_i| reach sqrt(2) further per dx), so every option takes the same time step at the
+    same k_max (`timestepping.spectral_cfl_bound`). Sorted by core-hours, cheapest first."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+    from eddybox.solver.fluid.timestepping import SCHEMES
+    from eddybox.solver.run import scales
+
+    if not (kmax_eta > 0 and math.isfinite(kmax_eta)):
+        raise ConfigError(f"--kmax-eta: expected a finite number > 0, got {kmax_eta}")
+    pred = scales.predicted(cfg)
+    if "eta" not in pred:
+        raise ConfigError("--kmax-eta: the config's forcing sets no target dissipation, so eta is "
+                          "unknown; give forcing.dissipation (ou, linear, reinject with mode power)")
+    k0 = 2 * math.pi / cfg.grid.length
+    cal = cal or load_calibration() or calibrate()
+    schemes = [cfg.time.scheme] + (["rk4"] if cfg.time.scheme != "rk4" else [])
+    rows = []
+    for name, method in DEALIASING.items():
+        for scheme in schemes:
+            if method.stage_shifted and not SCHEMES[scheme].stage_shifts:
+                continue
+            if scheme != cfg.time.scheme and any(r["dealias"] == name for r in rows):
+                continue  # RK4 only stands in where the config's scheme cannot serve
+            n = fft_friendly(kmax_eta / (pred["eta"] * k0 * method.kmax_index(1)))
+            cfl = min(cfg.time.cfl / method.cfl_factor(), SCHEMES[scheme].cfl_limit)
+            c = cfg.with_changes({"grid.points": n, "fluid.dealias": name, "time.scheme": scheme,
+                                  "time.cfl": cfl})
+            e = estimate(c, n, ranks, bandwidth=bandwidth, latency=latency, cal=cal)
+            rows.append({"dealias": name, "scheme": scheme, "points": n, "cfl": cfl,
+                         "kmax_eta": k0 * method.kmax_index(n) * pred["eta"],
+                         "kept_modes": method.kept_modes(n),
+                         **{k: e[k] for k in ("dt", "steps", "seconds_per_step", "wall_seconds",
+                                              "core_hours", "memory_per_rank")}})
+    return sorted(rows, key=lambda r: r["core_hours"])
+
+
+def print_resolution_options(args):
+    from eddybox.solver.run import config as cfgmod
+
+    cfg = cfgmod.load(args.config, args.set)
+    cal = load_calibration(args.calibration) if args.calibration else None
+    ranks = args.ranks
+    if ranks < 1:
+        raise ConfigError(f"--ranks: expected a positive integer, got {ranks}")
+    rows = resolution_options(cfg, args.kmax_eta, ranks, cal, args.network_bandwidth,
+                              args.network_latency)
+    print(f"dealiasing options for {cfg.source} at k_max eta >= {args.kmax_eta:g} on {ranks} rank(s) "
+          f"(time to t = {cfg.time.end:g})")
+    print(f"  {'fluid.dealias':13s} {'scheme':6s} {'N':>5s} {'time.cfl':>8s} {'kmax eta':>8s} "
+          f"{'steps':>7s} {'s/step':>9s} {'core-hours':>11s} {'memory/rank':>12s}")
+    for r in rows:
+        print(f"  {r['dealias']:13s} {r['scheme']:6s} {r['points']:5d} {r['cfl']:8.3g} "
+              f"{r['kmax_eta']:8.3g} {r['steps']:7d} {r['seconds_per_step']:9.3g} "
+              f"{r['core_hours']:11.4g} {human_bytes(r['memory_per_rank']):>12s}")
+    best = rows[0]
+    print(f"cheapest: fluid.dealias {best['dealias']}, time.scheme {best['scheme']}, grid.points "
+          f"{best['points']}, time.cfl {best['cfl']:.3g} ({rows[-1]['core_hours'] / best['core_hours']:.2g}x "
+          f"less than the dearest)")
+    print("assumptions: as for eddybox estimate; at the same k_max every option takes the same "
+          "time step (time.cfl divided by sqrt(2) with spherical truncation); N is rounded up to "
+          "a size with prime factors 2, 3, 5, 7")
