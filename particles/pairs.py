@@ -62,6 +62,7 @@ __all__ = [
     "separation_wr_edges",
     "velocity_rms_1comp",
     "cell_count",
+    "histogram_chunks",
     "snap_to_edge",
     "subset_indices",
 ]
@@ -664,6 +665,11 @@ def _sorted_by_cell(pos, vel, box_length, ncell):
     return soa, start
 
 
+def histogram_chunks() -> int:
+    """Histogram copies one kernel call allocates by default (one per independent work chunk)."""
+    return max(_DEFAULT_CHUNKS, numba.get_num_threads())
+
+
 def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell, nchunks):
     """Counts, w_r histogram, under/overflow and the five sums for one range of bins."""
     same = pos_b is None
@@ -677,7 +683,7 @@ def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell
         raise ValueError(f"ncell = {ncell} gives cells smaller than r_max = {r_max}; "
                          f"allowed 1..{max_cells}")
     if nchunks is None:
-        nchunks = max(_DEFAULT_CHUNKS, numba.get_num_threads())
+        nchunks = histogram_chunks()
     nr, nw = r_edges.size - 1, wr_edges.shape[1] - 1
     hist = np.zeros((nchunks, nr * nw), dtype=np.int64)
     under = np.zeros((nchunks, nr), dtype=np.int64)

@@ -82,7 +82,9 @@ def _add_sweep(sp):
 
 def _add_report(sp):
     sp.add_argument("runs", nargs="+", metavar="RUN_DIR", help="run folders; the first is the reference")
-    sp.add_argument("--out", required=True, help="folder for index.html, the PNGs and summary.csv")
+    sp.add_argument("--out", required=True, help="folder for index.html, the PNGs and the CSV tables")
+    sp.add_argument("--separation", type=float, default=1.0, metavar="R_ETA",
+                    help="r/eta at which g and the collision kernel are drawn against St (default 1)")
 
 
 def _add_estimate(sp):
@@ -188,7 +190,7 @@ def cmd_sweep(args, comm=None):
 def cmd_report(args, comm=None):
     from eddybox.solver.study.report import write_report
 
-    write_report(args.runs, args.out)
+    write_report(args.runs, args.out, args.separation)
     return EXIT_DONE
 
 

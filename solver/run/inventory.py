@@ -51,6 +51,13 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
         g = ghost_field_bytes(n, order, ranks, layout, cfg.parallel.grid)
         if g:
             inv["ghosted_velocity"] = g
+        pr = cfg.stats.pairs
+        if pr.every is not None:
+            from eddybox.particles.hooks import pair_histogram_bytes
+
+            k = len(p.sets)
+            groups = k + (k * (k - 1) // 2 if pr.cross else 0)
+            inv["pair_histograms"] = pair_histogram_bytes(groups, pr.bins, pr.wr_bins)
     return inv
 
 
@@ -68,6 +75,8 @@ def live_inventory(sim) -> dict:
         inv["transpose_buffers"] = sim.layout.buffer_bytes()
     if sim.particles is not None:
         inv.update(sim.particles.inventory())
+    for h in sim.hooks:
+        inv.update(getattr(h, "inventory", dict)())
     return inv
 
 
