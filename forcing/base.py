@@ -33,6 +33,13 @@ class Forcing:
     #: config keys this scheme accepts: name -> eddybox.solver.fields.Field (default, type,
     #: range, units, description); the config section `forcing` is built from them
     params: dict = {}
+    #: extra per-sample series in fluid.h5 /series/: name -> (units, description); `series()`
+    #: returns their values
+    series_columns: dict = {}
+    #: whether the forcing sets a fluid at rest moving (a forcing proportional to u, or one
+    #: that rescales the existing modes, does not); checked before a run whose particle sets
+    #: need the Kolmogorov time of the flow
+    moves_fluid_at_rest = False
 
     @staticmethod
     def check_config(section) -> None:
@@ -53,6 +60,22 @@ class Forcing:
 
     def end_step(self, sim, dt: float) -> None:
         pass
+
+    def series(self) -> dict:
+        """Values of `series_columns` at a sample."""
+        return {}
+
+    def derived(self) -> dict:
+        """Entries for the `derived:` block of the run's config.yaml (rewritten when they
+        change, e.g. when a calibration ends)."""
+        return {}
+
+    def drain_notes(self) -> list[str]:
+        """Messages for the run log since the last call (e.g. a calibration has ended)."""
+        notes = list(getattr(self, "notes", ()))
+        if notes:
+            self.notes = []
+        return notes
 
     def target_dissipation(self):
         """The dissipation rate this forcing aims at in the stationary state, if it has one."""

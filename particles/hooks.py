@@ -11,7 +11,7 @@ import numpy as np
 
 from eddybox.particles import migration
 from eddybox.particles import pairs as pairs_kernel
-from eddybox.solver.errors import ConfigError
+from eddybox.solver.errors import ConfigError, OutputError
 from eddybox.solver.estimators import pairs as pair_estimators
 from eddybox.solver.run.checkpoint import restore_rng_state, rng_state_array
 from eddybox.solver.run.hooks import Hook, Schedule, state_key, state_path
@@ -51,6 +51,17 @@ class _LazyFileHook(Hook):
 
     def _ready(self):
         return True
+
+    def verify_resume(self, sim, resume_samples):
+        keep = self._resume_counts or resume_samples
+        if not sim.is_root:
+            return
+        if not os.path.exists(self.path):
+            if max(keep.values(), default=0) if isinstance(keep, dict) else keep:
+                raise OutputError(f"{self.path}: missing, but the checkpoint recorded samples in "
+                                  "it; restore it, or start the run again with --overwrite")
+        elif sim.particles is not None and sim.particles.released and self._ready():
+            self._build(sim).verify_existing(keep)
 
     def _ensure_file(self, sim):
         if self.file is not None or not sim.is_root:

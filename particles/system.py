@@ -15,7 +15,6 @@ import numpy as np
 
 from eddybox.particles import integrator, interpolation, migration
 from eddybox.particles.physical import physical_numbers
-from eddybox.solver.errors import ConfigError
 
 #: steps between re-sorts of the particles by grid cell
 SORT_EVERY = 16
@@ -56,9 +55,11 @@ class ParticleSet:
         """Fix tau_p (from St and the measured tau_eta) and, for physical sets, gravity."""
         if self.tau_p is None:
             if not np.isfinite(tau_eta):
-                raise ConfigError(f"particles.sets.{self.index}.stokes: the flow has no "
-                                  "dissipation at the release, so tau_eta and a Stokes number are "
-                                  "undefined; release later (particles.release) or give tau_p")
+                from eddybox.solver.errors import ConfigError
+
+                raise ConfigError(f"particles.sets[{self.index}].stokes: the flow has no "
+                                  "dissipation at the release (tau_eta is infinite), so the "
+                                  "Stokes number gives no response time; give tau_p instead")
             self.tau_p = float(self.stokes) * tau_eta
         elif self.stokes is None:
             self.stokes = self.tau_p / tau_eta if tau_eta > 0 else float("nan")

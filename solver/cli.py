@@ -1,23 +1,41 @@
 """The `eddybox` command line.
 
-Exit codes: 0 done; 2 usage or config error (one message naming the key or file); 3 numerical
-instability (last good checkpoint kept); 75 stopped early by a signal or the wall-time budget
-after a checkpoint (resume with --restart latest); 1 anything else.
+Exit codes: 0 done; 2 usage or config error (one message naming the key or file; nothing
+written or removed); 3 numerical instability (last good checkpoint kept); 75 stopped early by a
+signal or the wall-time budget with a checkpoint to resume from (resume with --restart latest);
+76 stopped by a signal before there was a checkpoint (nothing to resume); 1 anything else.
+
+SIGTERM, SIGINT and SIGUSR1 are caught before anything heavy is imported
+(`eddybox.solver.run.stops`): only the standard library, `eddybox.solver.errors` and
+`eddybox.solver.run.stops` are imported at module level here.
 """
 from __future__ import annotations
 
-import argparse
 import os
 import sys
 
-from eddybox.solver.errors import (
+from eddybox.solver.run import stops
+
+if __name__ == "__main__" or os.path.basename(sys.argv[0]) == "eddybox":
+    stops.install("hold")  # the process is eddybox: catch stop signals from the first line on
+
+import argparse  # noqa: E402
+import time  # noqa: E402
+
+from eddybox.solver.errors import (  # noqa: E402
     EXIT_DONE,
     EXIT_ERROR,
+    EXIT_NOTHING_TO_RESUME,
     EXIT_STOPPED,
     EXIT_UNSTABLE,
     EXIT_USAGE,
     ConfigError,
+    StopRequested,
 )
+
+
+MAX_MEMORY_HELP = ("memory one machine may use, e.g. 256GiB (default: this machine's memory); a "
+                   "run needing more is refused before it starts")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -29,6 +47,9 @@ class _Parser(argparse.ArgumentParser):
 def _parser():
     p = _Parser(prog="eddybox", description="Forced isotropic turbulence with inertial particles "
                 "and in-situ pair statistics.")
+    from eddybox.solver import __version__
+
+    p.add_argument("--version", action="version", version=f"eddybox {__version__}")
     sub = p.add_subparsers(dest="command", parser_class=_Parser)
 
     def with_config(sp):
@@ -36,15 +57,21 @@ def _parser():
         sp.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                         help="override a config key (value parsed as YAML); repeatable")
 
-    r = sub.add_parser("run", help="run a config")
-    with_config(r)
+    r = sub.add_parser("run", help="run a config, or continue a run folder")
+    r.add_argument("config", nargs="?", help="YAML config file (leave out to continue the run "
+                   "folder given by --out with --restart latest: its config.yaml is used)")
+    r.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config key (value parsed as YAML); repeatable; on a restart "
+                        "only the keys that may change may differ from the run's")
     r.add_argument("--out", help="output folder (default: the config's output)")
     r.add_argument("--restart", metavar="latest|FILE", help="continue from a checkpoint")
     r.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     r.add_argument("--quiet", action="store_true", help="no progress output on the terminal")
+    r.add_argument("--max-memory", metavar="SIZE", help=MAX_MEMORY_HELP)
 
     c = sub.add_parser("check", help="validate a config and print derived scales and costs")
     with_config(c)
+    c.add_argument("--max-memory", metavar="SIZE", help=MAX_MEMORY_HELP)
 
     d = sub.add_parser("demo", help="run the built-in demo end to end")
     d.add_argument("--out", default="runs/demo", help="output folder (default runs/demo)")
@@ -58,6 +85,8 @@ def _parser():
     s = sub.add_parser("schema", help="print the JSON Schema of the config (for editors), or the "
                        "README's config reference with --markdown")
     s.add_argument("--markdown", action="store_true", help="the config reference as a Markdown table")
+    s.add_argument("--write-readme", metavar="README", help="replace the config reference between "
+                   "the marker lines of this README (for contributors)")
 
     b = sub.add_parser("bench", help="measure performance ratios on this machine")
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
@@ -82,7 +111,8 @@ def _add_sweep(sp):
 
 def _add_report(sp):
     sp.add_argument("runs", nargs="+", metavar="RUN_DIR", help="run folders; the first is the reference")
-    sp.add_argument("--out", required=True, help="folder for index.html, the PNGs and the CSV tables")
+    sp.add_argument("--out", default=None, help="folder for index.html, the PNGs and the CSV files "
+                    "(default: RUN_DIR/report for one run, else a folder report/ beside the runs)")
     sp.add_argument("--separation", type=float, default=1.0, metavar="R_ETA",
                     help="r/eta at which g and the collision kernel are drawn against St (default 1)")
 
@@ -97,6 +127,19 @@ def _add_estimate(sp):
     sp.add_argument("--network-bandwidth", type=float, default=None, help="bytes/s per rank")
     sp.add_argument("--network-latency", type=float, default=None, help="seconds per message")
     sp.add_argument("--calibration", default=None, help="JSON written by eddybox bench")
+    j = sp.add_argument_group("batch job script (the restart chain of the production run)")
+    j.add_argument("--job-script", metavar="FILE", help="write a batch script for the run here")
+    j.add_argument("--scheduler", default="slurm", help="slurm (default) or pbs")
+    j.add_argument("--cores-per-node", type=int, default=48, help="cores of one node (default 48)")
+    j.add_argument("--margin", type=float, default=0.25,
+                   help="extra wall time over the estimate, as a fraction (default 0.25)")
+    j.add_argument("--max-walltime", default="24:00:00",
+                   help="the queue's longest job, HH:MM:SS (default 24:00:00); the chain resumes "
+                        "what one job cannot finish")
+    j.add_argument("--job-walltime", default=None, help="each job's limit, HH:MM:SS, instead of "
+                   "the one from the estimate")
+    j.add_argument("--out", default=None, help="the run folder the job writes (default: the "
+                   "config's output)")
 
 
 _EXTRA = {"sweep": ("one run per combination of varied keys", _add_sweep),
@@ -116,34 +159,88 @@ def _comm():
     return MPI.COMM_WORLD if MPI.COMM_WORLD.Get_size() > 1 else None
 
 
+def _max_memory(args):
+    from eddybox.solver.run.inventory import parse_size
+
+    return None if getattr(args, "max_memory", None) is None else parse_size(args.max_memory)
+
+
+def _one_line(comm, text):
+    """Print `text` on stderr from rank 0 only (every rank reaches the same verdict)."""
+    if comm is None or comm.Get_rank() == 0:
+        print(f"eddybox: {' '.join(str(text).split())}", file=sys.stderr, flush=True)
+
+
 def cmd_run(args, comm=None):
     from eddybox.solver.errors import NumericalInstability, OutputWriteError
     from eddybox.solver.run import config as cfgmod
     from eddybox.solver.run.simulation import Simulation
 
+    limit = _max_memory(args)
+    if args.config is None:
+        if args.restart is None or not args.out:
+            raise ConfigError("usage: run needs a CONFIG file, or a run folder to continue with "
+                              "--out RUN_DIR --restart latest")
+        args.config = os.path.join(args.out, "config.yaml")
+        if not os.path.isfile(args.config):
+            raise ConfigError(f"--out {args.out}: no config.yaml; not a run folder to continue")
     cfg = cfgmod.load(args.config, args.set)
-    sim = Simulation(cfg, output=args.out, overwrite=args.overwrite, restart=args.restart, comm=comm,
-                     quiet=args.quiet)
+    out = str(args.out or cfg.output)
+    sim = None
     try:
+        sim = Simulation(cfg, output=out, overwrite=args.overwrite, restart=args.restart, comm=comm,
+                         quiet=args.quiet, max_memory=limit, started=args.started)
         return sim.run()
+    except StopRequested as stop:
+        return _stopped(comm, stop, args, out)
     except NumericalInstability as exc:
-        if sim.is_root or comm is not None:
+        if sim is None or sim.is_root or comm is not None:
             print(f"eddybox: {exc}", file=sys.stderr, flush=True)
         if comm is not None and comm.Get_size() > 1:
             comm.Abort(EXIT_UNSTABLE)  # a particle check may fail on one rank only
         return EXIT_UNSTABLE
     except OutputWriteError as exc:
+        if sim is None:  # failed while creating the files: every rank knows it
+            _one_line(comm, f"error: {exc}")
+            return EXIT_ERROR
         print(f"eddybox: error: {exc}", file=sys.stderr, flush=True)
         if comm is not None and comm.Get_size() > 1:
             comm.Abort(EXIT_ERROR)  # only rank 0 writes: release the ranks waiting for it
         return EXIT_ERROR
+    finally:
+        if sim is not None:
+            sim.close()
+
+
+def _stopped(comm, stop, args, out):
+    """A stop signal before the time loop: 75 when this run has a checkpoint to resume from (a
+    restart), 76 when it has none."""
+    import glob
+
+    from eddybox.solver.run.run_folder import holds_run
+
+    command = f"eddybox run {args.config} --out {out}"
+    resumable = args.restart is not None and \
+        bool(glob.glob(os.path.join(out, "checkpoints", "checkpoint_*.h5")))
+    if resumable:
+        msg = (f"stopped by {stop.signal_name} before the run continued; resume with: "
+               f"eddybox run --out {out} --restart latest")
+    else:
+        again = " --overwrite" if os.path.isdir(out) and holds_run(out) else ""
+        msg = (f"stopped by {stop.signal_name} before the first checkpoint: nothing to resume; "
+               f"start again with: {command}{again}")
+    _one_line(comm, msg)
+    return EXIT_STOPPED if resumable else EXIT_NOTHING_TO_RESUME
 
 
 def cmd_check(args, comm=None):
     from eddybox.solver.run import config as cfgmod
+    from eddybox.solver.run.inventory import check_memory
     from eddybox.solver.study.check import print_check
 
+    limit = _max_memory(args)
     cfg = cfgmod.load(args.config, args.set)
+    check_memory(cfg, limit)
     print_check(cfg)
     return EXIT_DONE
 
@@ -159,9 +256,12 @@ def cmd_inspect(args, comm=None):
 
     if args.repair:
         from eddybox.solver.run.repair import repair_path
+        from eddybox.solver.run.run_folder import folder_of, refuse_if_locked
 
         if not os.path.exists(args.path):
             raise ConfigError(f"{args.path}: no such file or folder")
+        refuse_if_locked(args.path if os.path.isdir(args.path) else folder_of(args.path),
+                         "inspect --repair")
         for f in repair_path(args.path):
             print(f"repaired {f} (its writer had been killed; every flushed sample kept)")
     print(inspect_path(args.path))
@@ -169,8 +269,12 @@ def cmd_inspect(args, comm=None):
 
 
 def cmd_schema(args, comm=None):
-    from eddybox.solver.run.config_docs import json_schema_text, reference_table
+    from eddybox.solver.run.config_docs import json_schema_text, reference_table, update_readme
 
+    if args.write_readme:
+        changed = update_readme(args.write_readme)
+        print(f"{args.write_readme}: config reference {'updated' if changed else 'already current'}")
+        return EXIT_DONE
     print(reference_table() if args.markdown else json_schema_text())
     return EXIT_DONE
 
@@ -188,9 +292,10 @@ def cmd_sweep(args, comm=None):
 
 
 def cmd_report(args, comm=None):
-    from eddybox.solver.study.report import write_report
+    from eddybox.solver.study.report import default_report_folder, write_report
 
-    write_report(args.runs, args.out, args.separation)
+    index = write_report(args.runs, args.out or default_report_folder(args.runs), args.separation)
+    print(f"report written to {index}")
     return EXIT_DONE
 
 
@@ -207,45 +312,97 @@ COMMANDS = {"run": cmd_run, "check": cmd_check, "demo": cmd_demo, "inspect": cmd
 
 
 def _fail(comm, code, msg):
+    stops.settle()
     rank = 0 if comm is None else comm.Get_rank()
     if rank == 0:
-        print(f"eddybox: error: {msg}", file=sys.stderr)
+        print(f"eddybox: error: {' '.join(str(msg).split())}", file=sys.stderr)
     return code
 
 
 def main(argv=None) -> int:
+    """Run one command; return its exit code. Called with `argv` (from Python, tests), the
+    signal handlers it installs are put back on return; as the process's entry point they stay
+    until the process ends, so no signal after the last line kills it."""
+    started = time.monotonic()
+    stops.install("hold")
+    previous_hook = sys.unraisablehook
+    sys.unraisablehook = _quiet_h5py_cleanup
     comm = None
+    code = EXIT_ERROR
     try:
-        args = _parser().parse_args(argv)
-        if not args.command:
-            raise ConfigError("usage: a command is required: " + ", ".join(COMMANDS)
-                              + " (see 'eddybox --help')")
-        if args.command in ("run", "demo"):
-            comm = _comm()
-        code = COMMANDS[args.command](args, comm)
-    except ConfigError as exc:
-        code = _fail(comm, EXIT_USAGE, str(exc))
-    except KeyboardInterrupt:
-        code = _fail(comm, EXIT_STOPPED, "interrupted")
-    except BrokenPipeError:  # output piped into `head` and the like
-        sys.stdout = open(os.devnull, "w")
-        return EXIT_DONE
-    except Exception as exc:  # noqa: BLE001 - the last line of defence: a message, not a trace
-        from eddybox.solver.errors import CheckpointError, OutputError
-
-        if isinstance(exc, (CheckpointError, OutputError)):
+        try:
+            args = _parser().parse_args(argv)
+            args.started = started
+            if args.command not in ("run", "demo"):  # (a run checks between its start-up steps)
+                stops.install("raise")  # short commands stop at once
+                stops.check()
+            if not args.command:
+                raise ConfigError("usage: a command is required: " + ", ".join(COMMANDS)
+                                  + " (see 'eddybox --help')")
+            if args.command in ("run", "demo"):
+                comm = _comm()
+            code = COMMANDS[args.command](args, comm)
+            stops.settle()
+        except ConfigError as exc:
             code = _fail(comm, EXIT_USAGE, str(exc))
-        else:
-            if os.environ.get("EDDYBOX_DEBUG"):
-                raise
-            msg = f"{type(exc).__name__}: {exc} (set EDDYBOX_DEBUG=1 for a traceback)"
+        except (StopRequested, KeyboardInterrupt) as exc:
+            stops.settle()
+            _one_line(comm, f"stopped by {getattr(exc, 'signal_name', 'SIGINT')} before it "
+                      "could finish; nothing to resume")
+            code = EXIT_NOTHING_TO_RESUME
             if comm is not None and comm.Get_size() > 1:
-                # an error on one rank only would leave the others waiting in a collective
-                print(f"eddybox: error on rank {comm.Get_rank()}: {msg}", file=sys.stderr, flush=True)
-                comm.Abort(EXIT_ERROR)
-            code = _fail(comm, EXIT_ERROR, msg)
-    sys.stdout.flush()
-    return code
+                comm.Abort(code)  # other ranks may wait in a collective
+        except BrokenPipeError:  # output piped into `head` and the like
+            sys.stdout = open(os.devnull, "w")
+            return EXIT_DONE
+        except Exception as exc:  # noqa: BLE001 - the last line of defence: a message, not a trace
+            from eddybox.solver.errors import CheckpointError, DiskWriteError, OutputError
+
+            if isinstance(exc, (CheckpointError, OutputError)):
+                code = _fail(comm, EXIT_USAGE, str(exc))
+            elif isinstance(exc, DiskWriteError):
+                code = _fail(comm, EXIT_ERROR, f"writing failed: {exc}")
+            else:
+                if os.environ.get("EDDYBOX_DEBUG"):
+                    raise
+                msg = f"{type(exc).__name__}: {exc} (set EDDYBOX_DEBUG=1 for a traceback)"
+                if comm is not None and comm.Get_size() > 1:
+                    # an error on one rank only would leave the others waiting in a collective
+                    print(f"eddybox: error on rank {comm.Get_rank()}: {msg}", file=sys.stderr, flush=True)
+                    comm.Abort(EXIT_ERROR)
+                code = _fail(comm, EXIT_ERROR, msg)
+        try:
+            sys.stdout.flush()
+        except BrokenPipeError:
+            pass
+        return code
+    except StopRequested as exc:  # the signal came while a failure was being reported
+        stops.settle()
+        print(f"eddybox: stopped by {exc.signal_name}", file=sys.stderr, flush=True)
+        code = EXIT_NOTHING_TO_RESUME
+        return code
+    finally:
+        sys.unraisablehook = previous_hook
+        if argv is not None:
+            stops.uninstall()
+        else:
+            stops.ignore_from_now()
+            output = sys.modules.get("eddybox.solver.run.output")
+            if output is not None and output.abandoned():
+                # an HDF5 file could not be closed after a failed write: leave without the
+                # interpreter's clean-up, which would try to close it (see output._ABANDONED)
+                sys.stdout.flush()
+                sys.stderr.flush()
+                os._exit(code)
+
+
+def _quiet_h5py_cleanup(unraisable):
+    """After a failed write, h5py's clean-up of that file's objects reports the same failure
+    again as 'Exception ignored' tracebacks; the failure was reported once already."""
+    if isinstance(unraisable.exc_value, (OSError, RuntimeError)) and \
+            "h5py" in repr(unraisable.object):
+        return
+    sys.__unraisablehook__(unraisable)
 
 
 if __name__ == "__main__":

@@ -489,3 +489,40 @@ def _short(v) -> str:
     if isinstance(v, list):
         return "[" + ",".join(_short(x) for x in v) + "]"
     return str(v)
+
+
+#: a time given in large-eddy turnover times: "0.5 T_E"
+_EDDY_TIMES = re.compile(r"\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*T_E\s*")
+
+
+class TimeSpan(Num):
+    """A duration: a number (in the run's time unit T) or a string 'x T_E', x large-eddy
+    turnover times T_E = L/u' (resolved before the run: from the scales predicted from the
+    config, or in a sweep from a reference run; see `eddybox.solver.run.scales`)."""
+
+    def allowed(self, full=False):
+        return super().allowed(full).replace(", or null", "") + " (time units) or 'x T_E'" + (
+            ", or null" if self.none_ok else "")
+
+    def _check(self, key, v):
+        if isinstance(v, str):
+            m = _EDDY_TIMES.fullmatch(v)
+            if m:
+                x = float(m.group(1))
+                if not (math.isfinite(x) and 0.0 < x <= 1e6):
+                    raise ConfigError(f"{key}: expected x T_E with 0 < x <= 1e6, got {v!r}")
+                return f"{x:g} T_E"
+        return super()._check(key, v)
+
+    def _schema(self):
+        return {"anyOf": [super()._schema(),
+                          {"type": "string", "pattern": r"^\s*[0-9]*\.?[0-9]+([eE][+-]?[0-9]+)?\s*T_E\s*$"}]}
+
+
+def eddy_times(value) -> float | None:
+    """x for a TimeSpan value 'x T_E', None for an absolute time (or None)."""
+    if isinstance(value, str):
+        m = _EDDY_TIMES.fullmatch(value)
+        if m:
+            return float(m.group(1))
+    return None

@@ -18,7 +18,7 @@ LAYERS = {
     "fields": {"errors"},
     "estimators": set(),
     "fluid": BOTTOM,
-    "forcing": BOTTOM | {"fluid", "run"},
+    "forcing": BOTTOM | {"fluid", "run", "estimators"},
     "particles": BOTTOM | {"fluid", "run", "estimators", "forcing"},
     "run": BOTTOM | {"fluid", "forcing", "particles", "estimators", "version"},
     "study": BOTTOM | {"fluid", "forcing", "particles", "estimators", "run", "version"},

@@ -25,7 +25,7 @@ def test_readme_reference_is_the_generated_one():
     i, j = text.index(README_BEGIN), text.index(README_END) + len(README_END)
     assert text[i:j] == readme_section(), (
         "README.md's config reference differs from the config classes: regenerate it with "
-        "`eddybox schema --markdown` between the two marker lines")
+        "`eddybox schema --write-readme README.md`")
 
 
 def test_readme_lists_the_restart_keys_the_code_uses():
@@ -83,3 +83,14 @@ def test_schema_command_prints_json_and_markdown(capsys):
     assert json.loads(capsys.readouterr().out)["title"] == "eddybox run config"
     assert main(["schema", "--markdown"]) == 0
     assert capsys.readouterr().out.startswith("| key | default | units | meaning |")
+
+
+def test_shorthand_and_eddy_times_pass_the_schema():
+    raw = {"forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1, "timescale": "0.5 T_E",
+                       "calibrate": "20 T_E"},
+           "particles": {"sets": [{"name": "st", "stokes": [0.5, 1, 2]}]}}
+    validate(raw)
+    errors = list(_validator().iter_errors(raw))
+    assert not errors, [e.message for e in errors]
+    bad = {"forcing": {"kind": "ou", "timescale": "0.5 T_L"}}
+    assert list(_validator().iter_errors(bad))

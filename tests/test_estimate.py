@@ -25,6 +25,31 @@ def test_memory_inventory_matches_live_arrays(config_factory, scheme, dealias, p
     assert predicted_inventory(cfg) == live_inventory(sim)
 
 
+def test_pair_histogram_memory_bounds_what_a_sample_allocates(config_factory):
+    # tracemalloc (Python standard library) sees every numpy allocation; the predicted
+    # temporary of one pair sample must cover the measured peak without overstating it much
+    import tracemalloc
+
+    from eddybox.solver.run.inventory import temporary_arrays
+
+    cfg = config_factory(particles={"release": 0.0, "sets": [{"name": "a", "stokes": 1.0, "count": 300},
+                                                             {"name": "b", "tau_p": 0.0, "count": 300}]},
+                         stats={"fluid": {"every": None}, "spectra": {"every": None},
+                                "pairs": {"every": 0.1, "r_max": 1.0, "units": "box", "bins": 100,
+                                          "wr_bins": 1001, "cross": True}})
+    sim = Simulation(cfg, overwrite=True, quiet=True)
+    try:
+        hook = next(h for h in sim.hooks if h.name == "pairs")
+        tracemalloc.start()
+        hook.run(sim)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+        sim.close()
+    predicted = temporary_arrays(cfg)["pair_histograms"]
+    assert peak <= predicted <= 1.3 * peak, (peak, predicted)
+
+
 def test_time_model_reproduces_its_calibration_points():
     a, b = 3.0e-10, 4.0e-9
     pts = []

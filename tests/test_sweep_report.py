@@ -149,8 +149,10 @@ def test_interrupted_run_resumes_and_started_run_is_redone(swept, config_file, t
     assert proc.returncode == 75, text
     assert "stopped early" in (out / NAMES[0] / "log.txt").read_text()
     assert not (out / NAMES[1]).exists() and "not started" in text
-    # the second run was started by hand and killed before its first checkpoint
+    # the second run was started by hand and killed before its first checkpoint (eddybox had
+    # marked its folder as a run folder, eddybox.solver.run.run_folder)
     (out / NAMES[1]).mkdir()
+    (out / NAMES[1] / ".eddybox-run").write_text("eddybox run folder\n")
     (out / NAMES[1] / "log.txt").write_text("2026-01-01 00:00:00 eddybox run: killed early\n")
 
     assert main(args + ["--jobs", "2"]) == 0

@@ -5,9 +5,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from eddybox.solver.errors import InitialFieldError
 from eddybox.solver.fields import Num, Text
 from eddybox.solver.fluid import spectral_ops as ops
+from eddybox.solver.fluid.field_file import read_velocity_hat
 
 INITIAL_FIELDS: dict[str, callable] = {}
 #: config keys each kind accepts: name -> eddybox.solver.fields.Field
@@ -115,31 +115,9 @@ def spectrum(cfg, layout, nonlinear, seed, uh):
 def from_file(cfg, layout, nonlinear, seed, uh):
     """Velocity from an eddybox field snapshot or checkpoint (dataset `velocity_hat`, global
     half-complex coefficients). A different N is handled by spectral truncation (coarser
-    target) or zero padding (finer target); the box length must match."""
-    import h5py
-
-    path = cfg.path
-    try:
-        with h5py.File(path, "r") as f:
-            if "velocity_hat" not in f:
-                raise InitialFieldError(f"{path}: no dataset 'velocity_hat' (not an eddybox field or checkpoint)")
-            ds = f["velocity_hat"]
-            n_src = int(ds.shape[1])
-            length = float(ds.attrs.get("length", layout.length))
-            if abs(length - layout.length) > 1e-12 * layout.length:
-                raise InitialFieldError(f"{path}: box length {length} differs from grid.length {layout.length}")
-            full = ds[...]
-    except (OSError, RuntimeError) as exc:
-        raise InitialFieldError(f"{path}: cannot read ({exc})") from None
-    n = layout.n
-    src_idx = np.fft.fftfreq(n_src, 1.0 / n_src).astype(int)
-    dst_idx = np.fft.fftfreq(n, 1.0 / n).astype(int)
-    m = min(n_src, n) // 2  # keep |k_i| < m on both grids (drops both Nyquist planes)
-    glob = np.zeros((3, n, n, n // 2 + 1), complex)
-    sel_s = np.nonzero(np.abs(src_idx) < m)[0]
-    sel_d = np.array([np.nonzero(dst_idx == src_idx[i])[0][0] for i in sel_s])
-    glob[:, sel_d[:, None, None], sel_d[None, :, None], np.arange(m)[None, None, :]] = \
-        full[:, sel_s[:, None, None], sel_s[None, :, None], np.arange(m)[None, None, :]]
+    target) or zero padding (finer target); the box length must match. The file is checked
+    (shape, type, finite values, checksum) by `field_file.read_velocity_hat`."""
+    glob = read_velocity_hat(cfg.path, layout.n, layout.length)
     layout.scatter_spectral(glob, uh)
     nonlinear.keep_mask_apply(uh)
 

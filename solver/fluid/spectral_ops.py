@@ -215,9 +215,11 @@ def spectral_moments(uh, kx, ky, kz, wz, k0, n_shells, shells, comp_energy):
                     comp_energy[c] += ec
                     e += ec
                 kk = np.sqrt(k2)
-                s = int(kk / k0 + 0.5)
-                if s < n_shells:
-                    shells[s] += e
+                # compare as floats first: int() of an infinite or NaN |k| (an overflowed k^2)
+                # is undefined and once gave a huge negative index, i.e. a heap write
+                shell = kk / k0 + 0.5
+                if shell < n_shells:
+                    shells[int(shell)] += e
                 d += k2 * e
                 if k2 > 0.0:
                     inv += e / kk

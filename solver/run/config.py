@@ -156,6 +156,40 @@ class SetConfig(Section):
         return f"{self.name}: {self.count} particles, {what}"
 
 
+class SetList(ListOf):
+    """The particle sets, with a shorthand: a set whose `stokes`, `tau_p` or `radius` is a list
+    stands for one set per value, named by the set's name followed by the value
+    (`{name: st, stokes: [0.5, 1, 2]}` gives the sets st0.5, st1 and st2)."""
+
+    EXPANDABLE = ("stokes", "tau_p", "radius")
+
+    def parse(self, raw, key):
+        if isinstance(raw, list):
+            raw = self.expand(raw, key)
+        return super().parse(raw, key)
+
+    def expand(self, raw, key):
+        out = []
+        for i, item in enumerate(raw):
+            lists = [k for k in self.EXPANDABLE if isinstance(item, dict) and isinstance(item.get(k), list)]
+            if not lists:
+                out.append(item)
+                continue
+            if len(lists) > 1:
+                raise ConfigError(f"{key}[{i}]: only one of {', '.join(lists)} may be a list")
+            k = lists[0]
+            values = item[k]
+            if not values:
+                raise ConfigError(f"{key}[{i}].{k}: an empty list; give at least one value")
+            if not isinstance(item.get("name"), str):
+                raise ConfigError(f"{key}[{i}].name: a set with a list of {k} needs a name to "
+                                  "build the names of its sets from")
+            for j, v in enumerate(values):
+                value = SetConfig.section_fields()[k].check(f"{key}[{i}].{k}[{j}]", v)
+                out.append(dict(item, **{k: value, "name": f"{item['name']}{value:g}"}))
+        return out
+
+
 class ParticlesConfig(Section):
     """Inertial point particles: release time, interpolation, gravity and the sets."""
 
@@ -166,9 +200,11 @@ class ParticlesConfig(Section):
                      none_ok=False)
     physical = Optional(PhysicalConfig, "physical flow for sets given by radius: viscosity "
                         "(m²/s), dissipation (m²/s³), fluid_density (kg/m³), gravity (m/s²)")
-    sets = ListOf(SetConfig, "particle sets: `name`, `count`, and one of `stokes`, `tau_p` (0 = "
-                  "tracers) or `radius` + `density`; optional `interpolation`, `gravity`",
-                  unique="name")
+    sets = SetList(SetConfig, "particle sets: `name`, `count`, and one of `stokes`, `tau_p` (0 = "
+                   "tracers) or `radius` + `density`; optional `interpolation`, `gravity`. A list "
+                   "of stokes, tau_p or radius values stands for one set per value, named "
+                   "`name` + value (`{name: st, stokes: [0.5, 1, 2]}`: sets st0.5, st1, st2)",
+                   unique="name")
 
     def summary(self):
         if not self.sets:
@@ -437,10 +473,14 @@ def differing_keys(a: dict, b: dict) -> list[str]:
 
 
 def validate(raw, source="<dict>") -> Config:
+    """The validated Config of a raw mapping. A `derived:` block (a run folder's config.yaml
+    carries one) is ignored: it describes the run it was written by and is recomputed."""
     if raw is None:
         raw = {}
     if not isinstance(raw, dict):
         raise ConfigError(f"{source}: the top level must be a mapping of keys, got {type(raw).__name__}")
+    if "derived" in raw:
+        raw = {k: v for k, v in raw.items() if k != "derived"}
     root = RunConfig.parse(raw, "")
     _cross_checks(root)
     return Config(root, source)

@@ -3,6 +3,7 @@ config reference (a Markdown table) and a JSON Schema (draft 2020-12) for editor
 
     eddybox schema                # the JSON Schema, for an editor's YAML language server
     eddybox schema --markdown     # the README's config reference
+    eddybox schema --write-readme README.md   # put it between the README's marker lines
 
 `tests/test_config_docs.py` fails when the README's table differs from `reference_table()`.
 """
@@ -70,6 +71,21 @@ def readme_section() -> str:
     return f"{README_BEGIN}\n{reference_table()}\n{README_END}"
 
 
+def update_readme(path) -> bool:
+    """Replace the config reference between the README's marker lines; True if it changed."""
+    from eddybox.solver.errors import ConfigError
+
+    text = open(path, encoding="utf-8").read()
+    if README_BEGIN not in text or README_END not in text:
+        raise ConfigError(f"{path}: no config-reference marker lines to replace between")
+    i, j = text.index(README_BEGIN), text.index(README_END) + len(README_END)
+    new = text[:i] + readme_section() + text[j:]
+    if new != text:
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write(new)
+    return new != text
+
+
 # --- JSON Schema ---------------------------------------------------------------------------------
 def _section_schema(section) -> dict:
     props = {}
@@ -92,8 +108,15 @@ def _entry_schema(spec) -> dict:
         s["description"] = spec.doc
         return {"anyOf": [s, {"type": "null"}], "description": spec.doc}
     if isinstance(spec, ListOf):
-        return {"anyOf": [{"type": "array", "items": _section_schema(spec.section)},
-                          {"type": "null"}], "description": spec.doc}
+        items = _section_schema(spec.section)
+        for k in getattr(spec, "EXPANDABLE", ()):
+            # the shorthand: a list of values stands for one set per value
+            one = items["properties"][k]
+            items["properties"][k] = {"anyOf": [one, {"type": "array", "minItems": 1,
+                                                      "items": spec.section.section_fields()[k]._schema()}],
+                                      "description": one.get("description", "")}
+        return {"anyOf": [{"type": "array", "items": items}, {"type": "null"}],
+                "description": spec.doc}
     if isinstance(spec, KindOf):
         return _kind_schema(spec)
     raise TypeError(f"no schema for {spec!r}")

@@ -8,8 +8,19 @@ import os
 import h5py
 import numpy as np
 
+from eddybox.solver.errors import OutputError
 from eddybox.solver.fluid import fluid_stats
-from eddybox.solver.run.output import Column, Fixed, SampleFile, file_attrs, write_xdmf
+from eddybox.solver.fluid.field_file import checksum
+from eddybox.solver.run.output import (
+    Column,
+    Fixed,
+    SampleFile,
+    discard_temporary,
+    file_attrs,
+    release_after_failure,
+    write_error,
+    write_xdmf,
+)
 
 
 def state_key(path: str) -> str:
@@ -62,7 +73,12 @@ class Hook:
         self.schedule.done(sim.t)
 
     def open(self, sim, resume_samples=None):
-        pass
+        """Create the hook's file, or continue it after a restart (`resume_samples`: the
+        samples the checkpoint recorded)."""
+
+    def verify_resume(self, sim, resume_samples):
+        """Before a restart changes any file: check, read-only, that `open(sim,
+        resume_samples)` can continue the hook's file (OutputError naming it otherwise)."""
 
     def samples_written(self) -> int:
         return 0
@@ -91,11 +107,11 @@ class FluidHook(Hook):
         self.file = None
         self._counts = None
 
-    def open(self, sim, resume_samples=None):
-        if not sim.is_root:
-            return
+    def _describe(self, sim):
+        # the fluid series, then those the forcing adds (e.g. the OU variance)
+        self.names = {**fluid_stats.SERIES, **sim.forcing.series_columns}
         cols = [Column(f"/series/{k}", u, d, dtype=np.int64 if k == "step" else np.float64,
-                       dims=["/series/time"]) for k, (u, d) in fluid_stats.SERIES.items()]
+                       dims=["/series/time"]) for k, (u, d) in self.names.items()]
         n_sh = fluid_stats.shell_count(sim.layout)
         k = np.arange(n_sh) * sim.layout.k0
         cols += [Column("/spectra/time", "T", "time of each spectrum", dims=["/spectra/time"]),
@@ -107,12 +123,25 @@ class FluidHook(Hook):
                         "dissipation spectrum 2 nu k^2 E(k) (times k0 it sums to eps)",
                         tail=(n_sh,), dims=["/spectra/time", "/spectra/k"])]
         fixed = [Fixed("/spectra/k", k, "L^-1", "shell centre wavenumber s k0", scale="k")]
-        self.file = SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
-                               sample_scales=["/series/time", "/spectra/time"])
+        return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
+                          sample_scales=["/series/time", "/spectra/time"])
+
+    def open(self, sim, resume_samples=None):
+        if not sim.is_root:
+            return
+        self.file = self._describe(sim)
         if resume_samples is None:
             self.file.create()
         else:
             self.file.reopen(self._counts or resume_samples)
+
+    def verify_resume(self, sim, resume_samples):
+        keep = self._counts or resume_samples
+        if os.path.exists(self.path):
+            self._describe(sim).verify_existing(keep)
+        elif max(keep.values(), default=0) if isinstance(keep, dict) else keep:
+            raise OutputError(f"{self.path}: missing, but the checkpoint recorded samples in it; "
+                              "restore it, or start the run again with --overwrite")
 
     def due(self, t, step):
         return self.schedule.due(t, step) or self.spectra.due(t, step)
@@ -121,7 +150,7 @@ class FluidHook(Hook):
         if self.schedule.due(sim.t, sim.step):
             rec = sim.fluid_record()  # collective
             if self.file is not None:
-                self.file.append({f"/series/{k}": rec[k] for k in fluid_stats.SERIES})
+                self.file.append({f"/series/{k}": rec[k] for k in self.names})
             self.schedule.done(sim.t)
         if self.spectra.due(sim.t, sim.step):
             st = sim.spectral_stats()  # collective
@@ -171,11 +200,13 @@ class FieldsHook(Hook):
         uh = sim.layout.gather_spectral(sim.uh)
         if not sim.is_root:
             return
-        os.makedirs(self.folder, exist_ok=True)
         name = f"field_{sim.step:08d}.h5"
         path = os.path.join(self.folder, name)
         tmp = path + ".tmp"
-        with h5py.File(tmp, "w") as f:
+        f = None
+        try:
+            os.makedirs(self.folder, exist_ok=True)
+            f = h5py.File(tmp, "w")
             for k, v in file_attrs(sim.config.hash()).items():
                 f.attrs[k] = v
             f.attrs["time"], f.attrs["step"] = sim.t, sim.step
@@ -188,7 +219,14 @@ class FieldsHook(Hook):
             d.attrs["description"] = ("normalised Fourier coefficients (3, kx, ky, kz>=0) of the "
                                       "velocity, u(x) = sum_k u_k exp(i k.x)")
             d.attrs["length"] = sim.layout.length
-        os.replace(tmp, path)
+            d.attrs["crc32"] = checksum(uh)
+            f.close()
+            f = None
+            os.replace(tmp, path)
+        except (OSError, RuntimeError) as exc:  # h5py reports a full disk either way
+            release_after_failure(f)
+            discard_temporary(tmp)
+            raise write_error(path, exc) from None
         write_xdmf(name, path[:-3] + ".xdmf", sim.layout.n, sim.layout.length, sim.t,
                    [(f"u{c}", f"/u{c}") for c in "xyz"])
         self.count += 1

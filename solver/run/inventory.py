@@ -1,9 +1,16 @@
 """Memory the solver allocates, computed from shapes alone (for `check` and `estimate`) and
-listed from a live `Simulation` (so the two can be compared in tests)."""
+listed from a live `Simulation` (so the two can be compared in tests), and the refusal of a run
+that cannot fit in this machine's memory (`check_memory`, for `check` and `run`, before
+anything is allocated, created or removed)."""
 from __future__ import annotations
+
+import math
+import os
+import re
 
 import numpy as np
 
+from eddybox.solver.errors import ConfigError
 from eddybox.solver.fluid.timestepping import SCHEMES
 
 COMPLEX, REAL = 16, 8
@@ -81,7 +88,132 @@ def live_inventory(sim) -> dict:
 
 
 def human_bytes(b: float) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if abs(b) < 1024 or unit == "TiB":
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB"):
+        if abs(b) < 1024 or unit == "EiB":
             return f"{b:.1f} {unit}" if unit != "B" else f"{int(b)} B"
         b /= 1024.0
+
+
+#: memory of the interpreter with numpy, scipy, numba, pyFFTW and h5py loaded, before any
+#: array of the run (VmHWM of a 16^3 run without particles, measured with
+#: /proc/self/status on this project's test machine: about 190 MiB; rounded up)
+PROCESS_BYTES = 256 * 2**20
+#: chunks of the pair kernel's private histograms (eddybox.particles.pairs: at least 32, or
+#: one per numba thread when there are more)
+PAIR_CHUNKS = 32
+
+
+def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
+    """name -> bytes per rank of the largest short-lived arrays of a run, beyond
+    `predicted_inventory`: the global field rank 0 gathers for every checkpoint and field
+    snapshot, the source field of `fluid.initial.kind: file`, the positions every rank draws
+    when a set is seeded, and the histograms of one pair-statistics sample (the kernel's
+    private copies per chunk, their sum, the record and the running sums of every group)."""
+    n = cfg.grid.points
+    full = 3 * n * n * (n // 2 + 1) * COMPLEX
+    tmp = {"checkpoint_gather": full}
+    if cfg.fluid.initial.kind == "file":
+        tmp["initial_file"] = 2 * full  # the source block read and the field it is mapped to
+    p = cfg.particles
+    if p.sets:
+        tmp["particle_seeding"] = max(s.count for s in p.sets) * (3 * REAL + 8 + 1)
+        pr = cfg.stats.pairs
+        if pr.every is not None:
+            sets = len(p.sets)
+            groups = sets + (sets * (sets - 1) // 2 if pr.cross else 0)
+            h = pr.bins * pr.wr_bins * 8
+            # the kernel's chunks, their sum and the sample's histogram; per group the running
+            # sum, the record and (first sample) the zeros the file is created with
+            tmp["pair_histograms"] = h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
+    return tmp
+
+
+#: the config key to lower for each item of the inventory
+_KEYS = {"particles": "particles.sets[{set}].count", "particle_seeding": "particles.sets[{set}].count",
+         "pair_histograms": "stats.pairs.bins"}
+
+
+def memory_needed(cfg, ranks: int = 1, layout: str = "serial", threads: int = 1) -> dict:
+    """name -> bytes per rank at the run's peak: every lasting array, the largest temporary
+    one, and the process itself."""
+    total = sum(s.count for s in cfg.particles.sets)
+    inv = predicted_inventory(cfg, ranks, layout, particles_per_rank=-(-total // ranks)
+                              if cfg.particles.sets else None)
+    tmp = temporary_arrays(cfg, ranks, threads)
+    largest = max(tmp, key=tmp.get)
+    return dict(inv, **{largest: tmp[largest]}, process=PROCESS_BYTES)
+
+
+def machine_memory() -> int:
+    """Bytes of memory this process may use: the physical memory, or a smaller cgroup limit
+    (batch systems confine jobs with one)."""
+    try:
+        limit = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - not Linux
+        limit = 2**62
+    for path in ("/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory/memory.limit_in_bytes"):
+        try:
+            with open(path) as fh:
+                text = fh.read().strip()
+        except OSError:
+            continue
+        if text.isdigit() and 0 < int(text) < limit:
+            limit = int(text)
+    return limit
+
+
+_UNITS = {"": 1, "b": 1, "k": 2**10, "kib": 2**10, "m": 2**20, "mib": 2**20, "g": 2**30,
+          "gib": 2**30, "t": 2**40, "tib": 2**40, "p": 2**50, "pib": 2**50, "kb": 10**3,
+          "mb": 10**6, "gb": 10**9, "tb": 10**12, "pb": 10**15}
+
+
+def parse_size(text, option="--max-memory") -> int:
+    """Bytes from '64GiB', '64G' (powers of 1024), '64GB' (powers of 1000) or plain bytes."""
+    m = re.fullmatch(r"\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-z]*)\s*", str(text))
+    unit = m.group(2).lower() if m else None
+    if not m or unit not in _UNITS:
+        raise ConfigError(f"{option}: expected a size such as 64GiB, 512MiB or 2TB, got {text!r}")
+    value = float(m.group(1)) * _UNITS[unit]
+    if not math.isfinite(value) or not 2**20 <= value <= 2**60:
+        raise ConfigError(f"{option}: expected a size from 1 MiB to 1024 PiB, got {text!r}")
+    return int(value)
+
+
+def check_memory(cfg, limit: int | None = None, ranks: int = 1, layout: str = "serial",
+                 ranks_here: int = 1, threads: int = 1):
+    """ConfigError naming the key to lower when the run would need more memory than `limit`
+    bytes (default `machine_memory()`): `ranks_here` ranks on this machine, each needing
+    `memory_needed`."""
+    need = memory_needed(cfg, ranks, layout, threads)
+    total = sum(need.values()) * ranks_here
+    given = limit is not None
+    limit = machine_memory() if limit is None else limit
+    if total <= limit:
+        return
+    if given and limit < PROCESS_BYTES * ranks_here:
+        raise ConfigError(f"--max-memory: {human_bytes(limit)} is less than eddybox itself needs "
+                          f"({human_bytes(PROCESS_BYTES)} per process before any array)")
+    biggest = max((k for k in need if k != "process"), key=need.get)
+    sets = cfg.particles.sets
+    key = _KEYS.get(biggest, "grid.points").format(
+        set=max(range(len(sets)), key=lambda i: sets[i].count) if sets else 0)
+    if biggest == "pair_histograms":
+        key = "stats.pairs.bins / stats.pairs.wr_bins"
+    where = (f"{ranks_here} ranks on this machine need" if ranks_here > 1 else "the run needs")
+    have = f"--max-memory {human_bytes(limit)}" if given else f"this machine's {human_bytes(limit)}"
+    raise ConfigError(f"{key}: {where} {human_bytes(total)} of memory, more than {have} "
+                      f"(largest part: {biggest} {human_bytes(need[biggest])} per process); "
+                      f"lower {key}, or give --max-memory SIZE on a machine with more memory")
+
+
+def ranks_on_this_machine(comm) -> int:
+    """MPI ranks sharing this machine's memory with this one (collective; 1 without MPI)."""
+    if comm is None or comm.Get_size() == 1:
+        return 1
+    from mpi4py import MPI
+
+    node = comm.Split_type(MPI.COMM_TYPE_SHARED)
+    try:
+        return node.Get_size()
+    finally:
+        node.Free()

@@ -10,12 +10,13 @@ from __future__ import annotations
 
 import datetime
 import os
+import re
 
 import h5py
 import numpy as np
 
 from eddybox.solver import __version__
-from eddybox.solver.errors import OutputError
+from eddybox.solver.errors import DiskWriteError, OutputError
 
 
 def file_attrs(config_hash: str) -> dict:
@@ -44,9 +45,65 @@ class Fixed:
         self.dims = dims
 
 
+#: h5py objects of files whose writes failed for good. They are never closed: closing an HDF5
+#: file that cannot be flushed frees HDF5's state of it, after which h5py touches the freed
+#: memory and the process dies with a segmentation fault (h5py issues #914 and #1642). Kept
+#: here, they are never released either; the command line then leaves with os._exit, so that
+#: nothing tries to close them at exit.
+_ABANDONED: list = []
+
+
+def write_error(path, exc) -> DiskWriteError:
+    """DiskWriteError naming `path`, with HDF5's long multi-line report cut to its reason
+    ('Unable to synchronously flush file: No space left on device')."""
+    text = " ".join(str(getattr(exc, "strerror", None) or exc).split())
+    m = re.search(r"error message = '([^']+)'", text)
+    if m:
+        text = f"{text.split(' (', 1)[0]}: {m.group(1)}"
+    return DiskWriteError(f"{path}: {text[:300]}")
+
+
+def abandon(*objects):
+    _ABANDONED.extend(o for o in objects if o is not None)
+
+
+def abandoned() -> bool:
+    """True when some file could not be closed safely (see `_ABANDONED`)."""
+    return bool(_ABANDONED)
+
+
+def release_after_failure(f, *objects):
+    """After a failed write to the h5py file `f` (and its dataset `objects`): close it if a
+    flush now succeeds (space was freed), else abandon it."""
+    if f is None:
+        return
+    try:
+        f.flush()
+        f.close()
+    except Exception:  # noqa: BLE001 - HDF5 reports a full disk in several ways
+        abandon(f, *objects)
+
+
+def discard_temporary(path):
+    """Remove a half-written temporary file; emptied first, so that its blocks are freed even
+    while an abandoned HDF5 handle keeps it open."""
+    try:
+        os.truncate(path, 0)
+    except OSError:
+        pass
+    try:
+        os.remove(path)
+    except OSError:
+        pass
+
+
 class SampleFile:
     """An HDF5 file of appendable columns. `create` builds every dataset up front (SWMR forbids
-    creating datasets later), then `append` adds one sample to each column and flushes."""
+    creating datasets later), then `append` adds one sample to each column and flushes.
+
+    A failed write (disk full: h5py raises OSError or RuntimeError) raises DiskWriteError
+    naming the file; the file is then left alone (`close` closes it only if it can be flushed,
+    see `release_after_failure`), so no later write meets a half-updated HDF5 state."""
 
     def __init__(self, path, columns, fixed=(), attrs=None, group_attrs=None, sample_scales=()):
         self.path = str(path)
@@ -58,18 +115,36 @@ class SampleFile:
         self.f = None
         self.n = 0
         self.counts = {}
+        self.failed = False
+        self._touched = []
+
+    def _failure(self, exc, path=None):
+        self.failed = True
+        return write_error(path or self.path, exc)
 
     # -- life cycle ------------------------------------------------------------------------
     def create(self, path=None, swmr=True):
         path = path or self.path
         try:
             f = h5py.File(path, "w", libver="latest")
-        except OSError as exc:
-            raise OutputError(f"{path}: cannot create ({exc})") from None
+        except (OSError, RuntimeError) as exc:
+            raise self._failure(exc, path) from None
+        made = []
+        try:
+            self._build(f, swmr, made)
+        except (OSError, RuntimeError) as exc:
+            release_after_failure(f, *made)
+            raise self._failure(exc, path) from None
+        self.f = f
+        self.n = 0
+        self.counts = {p: 0 for p in self.columns}
+
+    def _build(self, f, swmr, made):
         for k, v in self.attrs.items():
             f.attrs[k] = v
         for fx in self.fixed:
             d = f.create_dataset(fx.path, data=fx.data)
+            made.append(d)
             d.attrs["units"], d.attrs["description"] = fx.units, fx.description
             if fx.scale:
                 d.make_scale(fx.scale)
@@ -77,24 +152,46 @@ class SampleFile:
             chunk = (max(1, min(1024, (1 << 16) // max(1, int(np.prod(c.tail)) * c.dtype.itemsize))),) + c.tail
             d = f.create_dataset(c.path, shape=(0,) + c.tail, maxshape=(None,) + c.tail,
                                  dtype=c.dtype, chunks=chunk)
+            made.append(d)
             d.attrs["units"], d.attrs["description"] = c.units, c.description
             if c.path in self.sample_scales:
                 d.make_scale(c.path.rsplit("/", 1)[-1])
         for gpath, attrs in self.group_attrs.items():
             g = f.require_group(gpath)
+            made.append(g)
             for k, v in attrs.items():
                 g.attrs[k] = v
         for c in [*self.columns.values(), *self.fixed]:
             if c.dims:
                 for axis, scale in enumerate(c.dims):
                     if scale and scale != c.path:
-                        f[c.path].dims[axis].attach_scale(f[scale])
+                        d, sd = f[c.path], f[scale]
+                        made += [d, sd]
+                        d.dims[axis].attach_scale(sd)
         if swmr:
             f.swmr_mode = True
-        self.f = f
-        self.n = 0
-        self.counts = {p: 0 for p in self.columns}
         f.flush()
+
+    def verify_existing(self, keep=None):
+        """Check, changing nothing, that `reopen(keep)` can continue the existing file: it reads,
+        has every column with the expected per-sample shape, and at least the samples the
+        checkpoint recorded. OutputError names the file and what is wrong."""
+        try:
+            f = h5py.File(self.path, "r", swmr=True)
+        except (OSError, RuntimeError) as exc:
+            raise OutputError(f"{self.path}: cannot read the existing output file ({exc}); "
+                              "restore it, or start the run again with --overwrite") from None
+        with f:
+            for p, c in self.columns.items():
+                d = f.get(p)
+                if not isinstance(d, h5py.Dataset) or d.shape[1:] != c.tail:
+                    raise OutputError(f"{self.path}: dataset {p} is missing or has another "
+                                      "shape; not a file of this run")
+                want = keep.get(p, 0) if isinstance(keep, dict) else (keep or 0)
+                if d.shape[0] < int(want):
+                    raise OutputError(f"{self.path}: {p} holds {d.shape[0]} samples but the "
+                                      f"checkpoint recorded {int(want)}; not the file this "
+                                      "checkpoint belongs to")
 
     def reopen(self, keep=None):
         """Continue an existing file, first dropping samples beyond `keep` (an int for every
@@ -119,49 +216,91 @@ class SampleFile:
                 counts[p] = min(have, int(want))
             attrs = dict(old.attrs)
             self.create(path=tmp, swmr=False)
-            new = self.f
-            for k, v in attrs.items():
-                new.attrs[k] = v
-            for fx in self.fixed:
-                if fx.path in old and old[fx.path].shape == new[fx.path].shape:
-                    new[fx.path][...] = old[fx.path][...]
-            for p, n in counts.items():
-                new[p].resize(n, axis=0)
-                for i in range(0, n, 256):
-                    new[p][i:min(n, i + 256)] = old[p][i:min(n, i + 256)]
-            new.close()
+            new, self.f = self.f, None
+            try:
+                for k, v in attrs.items():
+                    new.attrs[k] = v
+                for fx in self.fixed:
+                    if fx.path in old and old[fx.path].shape == new[fx.path].shape:
+                        new[fx.path][...] = old[fx.path][...]
+                for p, n in counts.items():
+                    d = new[p]
+                    self._touched.append(d)
+                    d.resize(n, axis=0)
+                    for i in range(0, n, 256):
+                        d[i:min(n, i + 256)] = old[p][i:min(n, i + 256)]
+                new.close()
+            except BaseException as exc:
+                release_after_failure(new, *self._touched)
+                discard_temporary(tmp)
+                if isinstance(exc, (OSError, RuntimeError)):
+                    raise self._failure(exc, tmp) from None
+                raise
+            self._touched = []
         fsync_path(tmp)
-        os.replace(tmp, self.path)
-        f = h5py.File(self.path, "r+", libver="latest")
-        f.swmr_mode = True
+        try:
+            os.replace(tmp, self.path)
+            f = h5py.File(self.path, "r+", libver="latest")
+        except (OSError, RuntimeError) as exc:
+            raise self._failure(exc) from None
+        try:
+            f.swmr_mode = True
+            f.flush()
+        except (OSError, RuntimeError) as exc:
+            release_after_failure(f)
+            raise self._failure(exc) from None
         self.f = f
         self.counts = counts
         self.n = min(counts.values()) if counts else 0
-        f.flush()
 
     def append(self, record: dict):
         """Add one sample to each column named in `record` (others keep their length)."""
-        f = self.f
-        for p, value in record.items():
-            d = f[p]
-            i = self.counts[p]
-            d.resize(i + 1, axis=0)
-            d[i] = value
-            self.counts[p] = i + 1
-        self.n = min(self.counts.values())
-        f.flush()
+        f = self._open_for_writing()
+        try:
+            for p, value in record.items():
+                d = f[p]
+                self._touched.append(d)
+                i = self.counts[p]
+                d.resize(i + 1, axis=0)
+                d[i] = value
+                self.counts[p] = i + 1
+            self.n = min(self.counts.values())
+            f.flush()
+        except (OSError, RuntimeError) as exc:
+            raise self._failure(exc) from None
+        self._touched = []
 
     def write_fixed(self, path, value):
         """Overwrite a fixed-shape dataset (running averages); allowed in SWMR mode."""
-        self.f[path][...] = value
+        f = self._open_for_writing()
+        try:
+            d = f[path]
+            self._touched.append(d)
+            d[...] = value
+        except (OSError, RuntimeError) as exc:
+            raise self._failure(exc) from None
+        self._touched = []
+
+    def _open_for_writing(self):
+        if self.failed:
+            raise DiskWriteError(f"{self.path}: an earlier write to this file failed")
+        return self.f
 
     def close(self):
-        if self.f is not None:
-            try:
-                self.f.flush()
-                self.f.close()
-            finally:
-                self.f = None
+        """Flush and close; after a failed write, close only if the file can be flushed."""
+        f, self.f = self.f, None
+        if f is None:
+            return
+        if self.failed:
+            release_after_failure(f, *self._touched)
+            return
+        try:
+            f.flush()
+            f.close()
+        except (OSError, RuntimeError) as exc:
+            self.failed = True
+            abandon(f, *self._touched)
+            raise write_error(self.path, exc) from None
 
 
 def fsync_path(path):
@@ -198,5 +337,8 @@ def write_xdmf(h5_name: str, xdmf_path, n: int, length: float, time: float, data
   </Domain>
 </Xdmf>
 """
-    with open(xdmf_path, "w") as fh:
-        fh.write(text)
+    try:
+        with open(xdmf_path, "w") as fh:
+            fh.write(text)
+    except OSError as exc:
+        raise write_error(xdmf_path, exc) from None

@@ -7,18 +7,37 @@ import time
 
 
 class RunLog:
-    def __init__(self, path, quiet=False, stream=None):
+    """The run log. With `hold`, lines are kept until `attach` gives the file (the output
+    folder is taken only after every check has passed), then written with their own times."""
+
+    def __init__(self, path, quiet=False, stream=None, hold=False):
         self.fh = open(path, "a") if path else None
+        self.held = [] if hold and not path else None
         self.quiet = quiet
         self.stream = stream or sys.stdout
         self.tty = (not quiet) and hasattr(self.stream, "isatty") and self.stream.isatty()
         self._live = False
 
+    def attach(self, path):
+        """Open the log file and write (and show) the lines held so far."""
+        self.fh = open(path, "a")
+        held, self.held = self.held or [], None
+        for stamp, msg in held:
+            self.fh.write(f"{stamp} {msg}\n")
+            self._show(msg)
+        self.fh.flush()
+
     def write(self, msg: str):
         stamp = datetime.datetime.now().strftime("%Y-%m-%d %H:%M:%S")
+        if self.held is not None:  # a refused run shows nothing but its one-line refusal
+            self.held.append((stamp, msg))
+            return
         if self.fh:
             self.fh.write(f"{stamp} {msg}\n")
             self.fh.flush()
+        self._show(msg)
+
+    def _show(self, msg: str):
         if not self.quiet:
             if self._live:
                 self.stream.write("\n")
@@ -38,8 +57,8 @@ class RunLog:
             self.stream.write("\n")
             self._live = False
         if self.fh:
-            self.fh.close()
-            self.fh = None
+            fh, self.fh = self.fh, None
+            fh.close()
 
 
 class Progress:

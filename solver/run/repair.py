@@ -11,7 +11,7 @@ import os
 
 import h5py
 
-from eddybox.solver.run.output import fsync_path
+from eddybox.solver.run.output import discard_temporary, fsync_path, release_after_failure, write_error
 
 
 def needs_repair(path) -> bool:
@@ -39,34 +39,49 @@ def repair_file(path) -> bool:
     if not needs_repair(path):
         return False
     tmp = str(path) + ".repair"
-    with h5py.File(path, "r", swmr=True) as src, h5py.File(tmp, "w", libver="latest") as dst:
-        _copy_attrs(src, dst)
-        datasets = []
-
-        def visit(name, obj):
-            if isinstance(obj, h5py.Group):
-                _copy_attrs(obj, dst.require_group(name))
-            else:
-                maxshape = obj.maxshape if obj.chunks else None
-                d = dst.create_dataset(name, data=obj[...], maxshape=maxshape, chunks=obj.chunks)
-                _copy_attrs(obj, d)
-                datasets.append(name)
-
-        src.visititems(visit)
-        for name in datasets:
-            s = src[name]
-            if s.is_scale:
-                # eddybox names every scale after its dataset (eddybox.solver.run.output)
-                dst[name].make_scale(name.rsplit("/", 1)[-1])
-        for name in datasets:
-            s = src[name]
-            for axis, dim in enumerate(s.dims):
-                for scale in dim.values():
-                    if scale.name != s.name:
-                        dst[name].dims[axis].attach_scale(dst[scale.name])
+    with h5py.File(path, "r", swmr=True) as src:
+        dst = None
+        try:
+            dst = h5py.File(tmp, "w", libver="latest")
+            _copy(src, dst)
+            dst.close()
+        except BaseException as exc:  # a full disk or a stop signal: the original stays as it was
+            release_after_failure(dst)
+            discard_temporary(tmp)
+            if isinstance(exc, (OSError, RuntimeError)):
+                raise write_error(tmp, exc) from None
+            raise
     fsync_path(tmp)
     os.replace(tmp, path)
     return True
+
+
+def _copy(src, dst):
+    """Every object of `src` into the new file `dst`, with attributes and dimension scales."""
+    _copy_attrs(src, dst)
+    datasets = []
+
+    def visit(name, obj):
+        if isinstance(obj, h5py.Group):
+            _copy_attrs(obj, dst.require_group(name))
+        else:
+            maxshape = obj.maxshape if obj.chunks else None
+            d = dst.create_dataset(name, data=obj[...], maxshape=maxshape, chunks=obj.chunks)
+            _copy_attrs(obj, d)
+            datasets.append(name)
+
+    src.visititems(visit)
+    for name in datasets:
+        s = src[name]
+        if s.is_scale:
+            # eddybox names every scale after its dataset (eddybox.solver.run.output)
+            dst[name].make_scale(name.rsplit("/", 1)[-1])
+    for name in datasets:
+        s = src[name]
+        for axis, dim in enumerate(s.dims):
+            for scale in dim.values():
+                if scale.name != s.name:
+                    dst[name].dims[axis].attach_scale(dst[scale.name])
 
 
 def repair_path(path) -> list[str]:

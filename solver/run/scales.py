@@ -5,6 +5,9 @@ from __future__ import annotations
 
 import math
 
+from eddybox.solver.errors import ConfigError
+from eddybox.solver.fields import eddy_times
+
 # Dissipation constant eps = C_eps u'^3 / L at high Reynolds number, C_eps ~ 0.5
 # (Pope 2000, Fig. 6.? / Sreenivasan 1998; "from memory"), used only for the Re_lambda estimate.
 C_EPS = 0.5
@@ -54,8 +57,49 @@ def predicted(config) -> dict:
         # band 2 show (L = 1.38 in a 2 pi box); an estimate, not a published constant
         lf = INTEGRAL_OVER_FORCING_WAVELENGTH * 2 * math.pi / (k0 * band)
         u = (eps * lf / C_EPS) ** (1 / 3)
-        out.update(u_rms_estimate=u, re_lambda_estimate=u * u * math.sqrt(15 / (nu * eps)))
+        out.update(u_rms_estimate=u, re_lambda_estimate=u * u * math.sqrt(15 / (nu * eps)),
+                   integral_scale_estimate=lf, eddy_time_estimate=lf / u)
     return out
+
+
+#: keys whose value may be given in large-eddy turnover times ('x T_E')
+EDDY_TIME_KEYS = ("forcing.timescale", "forcing.calibrate")
+
+
+def eddy_time_keys(config) -> dict:
+    """{dotted key: x} for every value given as 'x T_E'."""
+    out = {}
+    for key in EDDY_TIME_KEYS:
+        x = eddy_times(config.get(key))
+        if x is not None:
+            out[key] = x
+    return out
+
+
+def resolve_eddy_times(config, eddy_time=None, source=None):
+    """(config with every 'x T_E' replaced by x T_E in time units, record of what was done).
+
+    T_E = L/u', the large-eddy turnover time with L the integral scale and u' the r.m.s. velocity
+    (the definition the report's T_E row uses). It is `eddy_time` when given (a reference run's
+    measured stationary mean, say where from in `source`), else the estimate of `predicted`:
+    L = 0.45 of the forcing wavelength and u' from eps = C_eps u'^3 / L at the forcing's target
+    dissipation (a rough estimate, typically within 30 %)."""
+    relative = eddy_time_keys(config)
+    if not relative:
+        return config, {}
+    if eddy_time is None:
+        eddy_time = predicted(config).get("eddy_time_estimate")
+        source = "predicted from the config (L = 0.45 forcing wavelength, eps = 0.5 u'^3/L)"
+        if eddy_time is None:
+            key = next(iter(relative))
+            raise ConfigError(f"{key}: {config.get(key)!r} needs T_E, which is predicted from the "
+                              "forcing's target dissipation; this forcing has none; give the time "
+                              "in time units")
+    changes = {key: x * eddy_time for key, x in relative.items()}
+    record = {"eddy_time": float(eddy_time), "eddy_time_source": source or "given"}
+    for key, x in relative.items():
+        record[key] = {"given": f"{x:g} T_E", "value": float(changes[key])}
+    return config.with_changes(changes), record
 
 
 def derived_block(config, sim=None) -> dict:
@@ -76,4 +120,7 @@ def derived_block(config, sim=None) -> dict:
             out["forced_modes"] = int(band.n_full)
         out["layout"] = sim.layout.kind
         out["ranks"] = int(sim.layout.size)
+        if sim.eddy_times:
+            out["eddy_times"] = sim.eddy_times
+        out.update(sim.forcing.derived())
     return out

@@ -7,12 +7,13 @@ from a validated config, and runs the time loop.
 Usable from Python:
     sim = Simulation(config.load("run.yaml"), output="runs/x", overwrite=True)
     status = sim.run()      # 0 done, 75 stopped early after a checkpoint
+
+The output folder is taken only after every check that needs no time step has passed (see
+`Simulation`); `run_folder` says which folders may be replaced and holds the run's lock.
 """
 from __future__ import annotations
 
 import os
-import shutil
-import signal
 import time as _time
 
 import numpy as np
@@ -22,9 +23,12 @@ from eddybox.forcing import make_forcing
 from eddybox.solver.errors import (
     EXIT_DONE,
     EXIT_STOPPED,
+    CheckpointError,
     ConfigError,
+    DiskWriteError,
     InitialFieldError,
     NumericalInstability,
+    OutputError,
     OutputWriteError,
 )
 from eddybox.solver.fluid import fft, fluid_stats
@@ -34,43 +38,74 @@ from eddybox.solver.fluid.layout import make_layout
 from eddybox.solver.fluid.navier_stokes import NonlinearTerm
 from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 from eddybox.solver.run import checkpoint as ckpt
-from eddybox.solver.run import scales
+from eddybox.solver.run import run_folder, scales, stops
 from eddybox.solver.run.config import differing_keys, restart_mutable_keys
 from eddybox.solver.run.hooks import FieldsHook, FluidHook, Schedule
+from eddybox.solver.run.inventory import check_memory, ranks_on_this_machine
+from eddybox.solver.run.output import write_error
 from eddybox.solver.run.progress import Progress, RunLog
 
 #: the measured CFL number may exceed the scheme's limit by this factor before the run stops
 CFL_ALARM = 1.25
 
 
-def prepare_output(out, overwrite: bool, restart: bool):
-    """Refuse to mix runs: an existing non-empty folder needs --overwrite or --restart."""
-    out = str(out)
-    if os.path.exists(out) and not os.path.isdir(out):
-        raise ConfigError(f"{out}: output path exists and is not a folder")
-    exists = os.path.isdir(out) and any(os.scandir(out))
-    if restart:
-        if not exists:
-            raise ConfigError(f"--restart: output folder {out} has no run to continue")
-        return
-    if exists and not overwrite:
-        raise ConfigError(f"{out}: output folder exists and is not empty; use --overwrite to "
-                          "replace it or --restart latest to continue it")
-    if exists:
-        shutil.rmtree(out)
-    os.makedirs(out, exist_ok=True)
-
-
 class Simulation:
+    """A run, built in four phases so that nothing in the output folder is created, removed or
+    changed before every check that needs no time step has passed:
+
+    1. checks that need neither arrays nor writes: the output folder (a run in it needs
+       --overwrite or --restart; --overwrite only replaces a folder eddybox made and that
+       holds nothing else), its lock, and the memory the run will allocate;
+    2. everything built in memory: layout, state, forcing, particles (seeded when released at
+       t = 0), hooks; on a restart the checkpoint is read and verified, its state loaded, and
+       every output file it continues checked read-only;
+    3. the folder is taken: created and marked, locked, emptied for --overwrite, and on a
+       restart later checkpoints are set aside and temporary files of killed writes removed;
+    4. the log, the output files and config.yaml are written.
+
+    A refusal in phases 1-2 (and a lost race for the lock in 3) is a ConfigError (exit 2)
+    raised on every rank together. `max_memory` (bytes) replaces this machine's memory in the
+    check; `started` (time.monotonic()) is when this invocation began, the origin of
+    `time.walltime`."""
+
     def __init__(self, config, output=None, overwrite=False, restart=None, comm=None,
-                 quiet=False, stream=None):
+                 quiet=False, stream=None, max_memory=None, started=None):
         self.config = config
-        c = config.root
         self.comm = comm
         self.out = str(output or config.output)
+        self.started = _time.monotonic() if started is None else started
+        self.is_root = comm is None or comm.Get_rank() == 0
+        self.lock = None
+        self.hooks = []
+        self.particles = None
+        self.log = RunLog(None, quiet or not self.is_root, stream=stream, hold=self.is_root)
+        try:
+            self._build(overwrite, restart, max_memory)
+        except BaseException:
+            self.close()
+            raise
+
+    def _build(self, overwrite, restart, max_memory):
+        config = self.config
+        c = config.root
+        comm = self.comm
+        # 1. checks that change nothing
+        self._check_stop()
+        self._root_decides(lambda: run_folder.check_output(self.out, overwrite, restart is not None))
+        ranks = 1 if comm is None else comm.Get_size()
+        kind = "serial"
+        if ranks > 1:
+            from eddybox.solver.fluid.mpi_layout import resolve_grid
+
+            kind, _ = resolve_grid(c.grid.points, ranks, c.parallel.layout, c.parallel.grid)
+        here = ranks_on_this_machine(comm)
+        self._root_decides(lambda: check_memory(config, max_memory, ranks, kind, here,
+                                                fft.thread_count(here)))
+        self._check_stop()  # a stop signal takes effect between the phases of the start-up
+
+        # 2. everything in memory
         self.layout = make_layout(c.grid.points, c.grid.length, c.parallel.layout, c.parallel.grid,
                                   comm)
-        self.is_root = self.layout.rank == 0
         fft.configure_threads(self.layout.threads)
         self.nu = c.fluid.viscosity
         self.dx = c.grid.length / c.grid.points
@@ -78,35 +113,15 @@ class Simulation:
         self.nl = NonlinearTerm(self.layout, c.fluid.dealias)
         self.scheme = SCHEMES[c.time.scheme](self.layout, self.nl, self.nu)
         self.uh = self.scheme.alloc()
-        self.forcing = make_forcing(c.forcing, self.layout, c.seed)
+        # times given in large-eddy turnovers ('0.5 T_E') resolved once, from the config alone
+        resolved, self.eddy_times = scales.resolve_eddy_times(config)
+        self.forcing = make_forcing(resolved.forcing, self.layout, c.seed)
+        self._check_stop()
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None
-        self._stop_signal = None
         self.restart_from = None
         self.wall_offset = 0.0
-
-        restart_path = None
-        if restart is not None:
-            restart_path = self._resolve_restart(restart)
-            ck = ckpt.read_checkpoint(restart_path)
-            self._check_compatible(restart_path, ck[1])
-        else:
-            try:
-                build_initial(c.fluid.initial, self.layout, self.nl, c.seed, self.uh)
-            except InitialFieldError as exc:
-                raise ConfigError(f"fluid.initial.path: {exc}") from None
-        # the folder check runs on rank 0; its verdict reaches every rank, so all stop together
-        error = None
-        if self.is_root:
-            try:
-                prepare_output(self.out, overwrite, restart is not None)
-            except ConfigError as exc:
-                error = str(exc)
-        error = self.layout.bcast(error)
-        if error:
-            raise ConfigError(error)
-        self.log = RunLog(os.path.join(self.out, "log.txt") if self.is_root else None, quiet or not self.is_root,
-                          stream=stream)
+        self.last_checkpoint = None
         self.log.write(f"eddybox run: {config.summary()}")
         bound = spectral_cfl_bound(SCHEMES[c.time.scheme])
         if c.time.cfl > bound:
@@ -115,10 +130,20 @@ class Simulation:
         self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; dealias "
                        f"{c.fluid.dealias}; output {self.out}")
 
+        ck = restart_path = None
+        if restart is not None:
+            restart_path, ck = self._read_restart(restart)
+            self._check_compatible(restart_path, ck[1])
+        else:
+            try:
+                build_initial(c.fluid.initial, self.layout, self.nl, c.seed, self.uh)
+            except InitialFieldError as exc:
+                raise ConfigError(f"fluid.initial.path: {exc}") from None
+
+        self._check_stop()
         st = c.stats
         self.hooks = [FluidHook(st.fluid.every, st.spectra.every, os.path.join(self.out, "fluid.h5")),
                       FieldsHook(st.fields.every, os.path.join(self.out, "fields"))]
-        self.particles = None
         if c.particles.sets:
             from eddybox.particles.hooks import PairHook, ParticleHook
             from eddybox.particles.system import ParticleSystem
@@ -134,17 +159,136 @@ class Simulation:
         every = c.checkpoint.every
         self.checkpoint_schedule = Schedule(every, start=every or 0.0)
 
+        derived = None
         if restart_path is not None:
-            self._load(ck, restart_path)
+            resume = self._load(ck, restart_path)
+            self._root_decides(lambda: [h.verify_resume(self, n) for h, n in zip(self.hooks, resume)])
         else:
+            resume = [None] * len(self.hooks)
+            self._check_particles_can_start()
             if self.particles is not None and self.particles.release <= 0.0:
                 self.particles.seed(self)
-            for h in self.hooks:
-                h.open(self, None)
             derived = scales.derived_block(config, self)  # collective: every rank takes part
-            if self.is_root:
+
+        self._check_stop()
+        # 3. take the folder, 4. the log and the output files (a stop waits until both are done)
+        self.lock = self._root_decides(lambda: self._take_folder(overwrite, restart_path))
+        try:
+            self._root_decides(lambda: self._open_outputs(resume, derived), failure="write")
+        except DiskWriteError as exc:
+            raise OutputWriteError(self.write_failure(exc)) from None
+
+    def _signal_on_any_rank(self):
+        """The stop signal received by this rank or any other (collective), or None."""
+        sig = stops.received()
+        if self.comm is not None and self.comm.Get_size() > 1:
+            sig = next((s for s in self.comm.allgather(sig) if s), None)
+        return sig
+
+    def _check_stop(self):
+        """Between the steps of the start-up: every rank stops together when one has a signal."""
+        sig = self._signal_on_any_rank()
+        if sig:
+            stops.check(sig)
+
+    def _root_decides(self, fn, failure="usage"):
+        """Run `fn` on rank 0 only and share its verdict, so that every rank stops together
+        with one message: a refusal (ConfigError, CheckpointError, OutputError) raises
+        ConfigError on every rank; an OSError does too, or DiskWriteError with
+        failure="write" (the output files are being written)."""
+        verdict = result = None
+        if self.is_root:
+            try:
+                result = fn()
+            except (ConfigError, CheckpointError, OutputError) as exc:
+                verdict = ("usage", str(exc))
+            except OSError as exc:
+                verdict = (failure, str(exc) if isinstance(exc, DiskWriteError) else
+                           f"{getattr(exc, 'filename', None) or self.out}: {exc.strerror or exc}")
+        if self.comm is not None and self.comm.Get_size() > 1:
+            verdict = self.comm.bcast(verdict, root=0)
+        if verdict is not None:
+            kind, msg = verdict
+            raise ConfigError(msg) if kind == "usage" else DiskWriteError(msg)
+        return result
+
+    def _check_particles_can_start(self):
+        """Sets given by a Stokes number (or radius) need tau_eta at the release; a flow at rest
+        that nothing sets moving never has one. Refused here, not at the release."""
+        c = self.config.root
+        if self.particles is None:
+            return
+        need = [i for i, s in enumerate(c.particles.sets) if s.tau_p is None]
+        if not need or self.energy() > 0.0:  # collective
+            return
+        if not self.frozen and self.forcing.moves_fluid_at_rest:
+            return
+        i = need[0]
+        key = "stokes" if c.particles.sets[i].stokes is not None else "radius"
+        why = ("the field is frozen" if self.frozen else
+               f"forcing {c.forcing.kind!r} does not set a fluid at rest moving")
+        raise ConfigError(f"particles.sets[{i}].{key}: the flow starts at rest "
+                          f"(fluid.initial {c.fluid.initial.summary()}) and {why}, so there is no "
+                          "Kolmogorov time to turn it into a response time; give tau_p instead, "
+                          "or start from a moving flow")
+
+    def _take_folder(self, overwrite, restart_path):
+        lock, notes = run_folder.take(self.out, overwrite, restart_path is not None)
+        try:
+            if restart_path is not None:
+                notes += run_folder.set_aside_after(self.out, self.step)
+                notes += run_folder.remove_temporaries(self.out)
+        except BaseException:
+            lock.release()
+            raise
+        for note in notes:
+            self.log.write(note)
+        return lock
+
+    def _open_outputs(self, resume, derived):
+        """Phase 4 (rank 0 writes; the hooks' own `open` does nothing on other ranks)."""
+        self.log.attach(os.path.join(self.out, "log.txt"))
+        for h, n in zip(self.hooks, resume):
+            h.open(self, n)
+        if derived is not None:
+            try:
                 with open(os.path.join(self.out, "config.yaml"), "w") as fh:
-                    fh.write(config.to_yaml(derived))
+                    fh.write(self.config.to_yaml(derived))
+            except OSError as exc:
+                raise write_error(os.path.join(self.out, "config.yaml"), exc) from None
+        else:
+            # a restart may change how long the run goes and how often it saves: the folder's
+            # config.yaml says what it runs with now, so that `--out DIR --restart latest`
+            # alone continues it with these settings
+            self._rewrite_config_yaml()
+
+    def _update_derived(self):
+        """Rewrite the forcing's entries of the derived block in config.yaml (a calibration
+        has ended), atomically: a reader sees the old file or the new one."""
+        self._rewrite_config_yaml(self.forcing.derived())
+
+    def _rewrite_config_yaml(self, derived_updates=None):
+        """config.yaml with this invocation's settings and the old derived block (updated),
+        replaced atomically (rank 0)."""
+        if not self.is_root:
+            return
+        path = os.path.join(self.out, "config.yaml")
+        try:
+            with open(path) as fh:
+                old = yaml.safe_load(fh) or {}
+        except (OSError, yaml.YAMLError):
+            return  # the run's own copy is gone or damaged: nothing to update
+        derived = old.get("derived") if isinstance(old, dict) else None
+        derived = dict(derived) if isinstance(derived, dict) else {}
+        derived.update(derived_updates or {})
+        data = yaml.safe_load(self.config.to_yaml(derived))
+        tmp = path + f".tmp{os.getpid()}"
+        try:
+            with open(tmp, "w") as fh:
+                fh.write(yaml.safe_dump(data, sort_keys=False))
+            os.replace(tmp, path)
+        except OSError as exc:
+            raise write_error(path, exc) from None
 
     # ------------------------------------------------------------------ state and statistics
     def energy(self) -> float:
@@ -163,6 +307,7 @@ class Simulation:
         rec.update(fluid_stats.derived_scales(sp["energy"], sp["dissipation"], sp["inv_k"], self.nu,
                                               self.nl.kmax()))
         rec.update(der)
+        rec.update(self.forcing.series())
         return rec
 
     def wall_time(self) -> float:
@@ -200,6 +345,11 @@ class Simulation:
         else:
             dt = self.scheme.step(self.uh, self.forcing, self._choose_dt, self)
             self.forcing.end_step(self, dt)
+            notes = self.forcing.drain_notes()
+            if notes:
+                for note in notes:
+                    self.log.write(note)
+                self._update_derived()
         self.dt = dt
         if self.particles is not None:
             self.particles.advance(self, dt)
@@ -224,7 +374,13 @@ class Simulation:
         return st
 
     def write_checkpoint(self) -> str | None:
+        """Write a checkpoint of the current state (collective). A state that is not finite is
+        never written: NumericalInstability instead, the last checkpoint stays the last good one."""
         t0 = _time.monotonic()
+        if not np.isfinite(self.energy()):  # collective: NaN or inf anywhere in the field
+            raise NumericalInstability(f"the velocity field is no longer finite at t={self.t:.6g} "
+                                       f"(step {self.step}); no checkpoint written")
+        self._check_finite()
         uh = self.layout.gather_spectral(self.uh)
         state = self.state()
         path = None
@@ -241,21 +397,26 @@ class Simulation:
         self.last_checkpoint = path
         return path
 
-    def _resolve_restart(self, restart):
-        if restart == "latest":
-            folder = os.path.join(self.out, "checkpoints")
-            path = ckpt.latest_checkpoint(folder)
-            if path is None:
-                raise ConfigError(f"--restart latest: no readable checkpoint in {folder}")
-            return path
-        return str(restart)
+    def _read_restart(self, restart):
+        """(path, (velocity_hat, attrs, state)) of the checkpoint to continue from, verified.
+        `latest` passes over damaged checkpoints (noted in the log) to the newest intact one."""
+        if restart != "latest":
+            return str(restart), ckpt.read_checkpoint(str(restart))
+        folder = os.path.join(self.out, "checkpoints")
+        path, ck, skipped = ckpt.latest_intact(folder)
+        for bad, why in skipped:
+            self.log.write(f"--restart latest: passed over {bad}: {why}")
+        if path is None:
+            raise ConfigError(f"--restart latest: no readable checkpoint in {folder}"
+                              + (f" ({len(skipped)} damaged: {skipped[0][1]})" if skipped else ""))
+        return path, ck
 
     def _check_compatible(self, path, attrs):
         from eddybox.solver.run.config import validate
 
         try:
             old = validate(yaml.safe_load(attrs["config"]))
-        except (ConfigError, KeyError, yaml.YAMLError) as exc:
+        except (ConfigError, KeyError, TypeError, AttributeError, yaml.YAMLError) as exc:
             raise ConfigError(f"{path}: checkpoint carries no usable config ({exc})") from None
         if old.physics_hash() != self.config.physics_hash():
             keys = differing_keys(old.physics(), self.config.physics())
@@ -263,47 +424,43 @@ class Simulation:
                               f"config; differing keys: {', '.join(keys)} (only "
                               f"{', '.join(restart_mutable_keys())} may change)")
 
-    def _load(self, ck, path):
+    def _load(self, ck, path) -> list:
+        """Load the checkpoint's state into the objects built from the config (no file is
+        touched); return the samples each hook's file holds at the checkpoint."""
         uh, attrs, state = ck
         if uh.shape != (3, self.layout.n, self.layout.n, self.layout.n // 2 + 1):
             raise ConfigError(f"--restart {path}: grid {uh.shape[1]}^3 does not match grid.points "
                               f"{self.layout.n}")
+        part = "attributes"
+        try:
+            self.t, self.step = float(attrs["time"]), int(attrs["step"])
+            self.dt, self.cfl = float(attrs["dt"]), float(attrs["cfl"])
+            self.wall_offset = float(attrs.get("wall_time", 0.0))
+            if not all(np.isfinite(v) for v in (self.t, self.dt, self.cfl, self.wall_offset)):
+                raise ValueError("time, dt, cfl or wall_time is not finite")
+            part = "forcing"
+            self.forcing.load_state(state["forcing"])
+            part = "checkpoint_schedule"
+            self.checkpoint_schedule.load_state(state["checkpoint_schedule"])
+            if self.particles is not None:
+                part = "particles"
+                self.particles.load_state(self, state["particles"])
+            resume = []
+            for h in self.hooks:
+                part = f"hooks/{h.name}"
+                hs = state["hooks"].get(h.name)
+                if hs is None:
+                    raise ConfigError(f"--restart {path}: checkpoint has no state for {h.name}")
+                h.load_state(hs)
+                resume.append(int(hs["samples_written"]))
+        except (KeyError, ValueError, TypeError, IndexError, AttributeError) as exc:
+            raise CheckpointError(f"{path}: the state of {part} cannot be used ({exc}); choose "
+                                  "another checkpoint with --restart FILE") from None
         self.layout.scatter_spectral(uh, self.uh)
-        self.t, self.step = float(attrs["time"]), int(attrs["step"])
-        self.dt, self.cfl = float(attrs["dt"]), float(attrs["cfl"])
-        self.wall_offset = float(attrs.get("wall_time", 0.0))
-        self.forcing.load_state(state["forcing"])
-        self.checkpoint_schedule.load_state(state["checkpoint_schedule"])
-        if self.particles is not None:
-            self.particles.load_state(self, state["particles"])
-        for h in self.hooks:
-            hs = state["hooks"].get(h.name)
-            if hs is None:
-                raise ConfigError(f"--restart {path}: checkpoint has no state for {h.name}")
-            h.load_state(hs)
-            h.open(self, int(hs["samples_written"]))
         self.restart_from = path
+        return resume
 
     # ------------------------------------------------------------------ the loop
-    def _on_signal(self, signum, frame):
-        self._stop_signal = signal.Signals(signum).name
-
-    def _install_signals(self):
-        self._old_handlers = {}
-        if hasattr(signal, "SIGUSR1"):
-            sigs = (signal.SIGTERM, signal.SIGINT, signal.SIGUSR1)
-        else:  # pragma: no cover
-            sigs = (signal.SIGTERM, signal.SIGINT)
-        try:
-            for s in sigs:
-                self._old_handlers[s] = signal.signal(s, self._on_signal)
-        except ValueError:  # not in the main thread: leave the handlers alone
-            self._old_handlers = {}
-
-    def _restore_signals(self):
-        for s, h in self._old_handlers.items():
-            signal.signal(s, h)
-
     def _finished(self):
         c = self.config.time
         if self.t >= c.end - 1e-12 * max(1.0, abs(c.end)):
@@ -314,9 +471,10 @@ class Simulation:
 
     def run(self) -> int:
         """Run to the end; return EXIT_DONE, or EXIT_STOPPED after a signal or the wall-time
-        budget (a checkpoint is written first). NumericalInstability propagates."""
+        budget (a checkpoint is written first). NumericalInstability propagates; a failed
+        write raises OutputWriteError naming the last good checkpoint."""
         self._t_start = _time.monotonic()
-        self._install_signals()
+        own_handlers = stops.start_polling()
         progress = Progress(self.log, self.config.time.end, self)
         walltime = self.config.time.walltime
         step_times = []
@@ -338,14 +496,14 @@ class Simulation:
                     self.checkpoint_schedule.done(self.t)
                 step_times.append(_time.monotonic() - t0)
                 progress.update()
-                stop = self._stop_requested(walltime, step_times)
+                # a run that has just reached its end is done, whatever stop is pending
+                stop = None if self._finished() else self._stop_requested(walltime, step_times)
                 if stop:
                     path = self.write_checkpoint()
                     progress.close()
                     self.log.write(f"stopped early ({stop}) at t={self.t:.6g}, step {self.step}; "
                                    f"checkpoint {path}")
-                    self.log.write(f"resume with: eddybox run {self.config.source} --out {self.out} "
-                                   "--restart latest")
+                    self.log.write(f"resume with: {self.resume_command()}")
                     return EXIT_STOPPED
             self.write_checkpoint()
             progress.close()
@@ -354,28 +512,49 @@ class Simulation:
             return EXIT_DONE
         except NumericalInstability as exc:
             progress.close()
-            last = ckpt.latest_checkpoint(os.path.join(self.out, "checkpoints"))
             msg = (f"numerical instability: {exc}. Try a smaller time.cfl (now "
                    f"{self.config.time.cfl}), more grid.points (now "
                    f"{self.layout.n}) or a larger fluid.viscosity (now {self.nu}). "
-                   f"Last good checkpoint: {last or 'none'}")
-            self.log.write(msg)
+                   f"Last good checkpoint: {self.last_good_checkpoint() or 'none'}")
+            self._log_quietly(msg)
             raise NumericalInstability(msg) from None
         except OSError as exc:
             # disk full, permissions, a vanished folder: stop with the last good checkpoint
             progress.close()
-            last = ckpt.latest_checkpoint(os.path.join(self.out, "checkpoints"))
-            msg = (f"writing output failed: {exc}. The run stopped at t={self.t:.6g} (step "
-                   f"{self.step}); last good checkpoint: {last or 'none'}. Free space or fix the "
-                   "folder, then resume with --restart latest")
-            try:
-                self.log.write(msg)
-            except OSError:
-                pass
+            msg = self.write_failure(exc)
+            self._log_quietly(msg)
             raise OutputWriteError(msg) from None
         finally:
-            self._restore_signals()
+            if own_handlers:
+                stops.uninstall()
             self.close()
+
+    def resume_command(self) -> str:
+        """The command that continues this run with its settings as they are now: the run
+        folder's config.yaml holds them, overrides included."""
+        return f"eddybox run --out {self.out} --restart latest"
+
+    def last_good_checkpoint(self):
+        """The newest checkpoint of the output folder that verifies (rank 0), or None."""
+        if not self.is_root:
+            return None
+        return ckpt.latest_checkpoint(os.path.join(self.out, "checkpoints"))
+
+    def write_failure(self, exc) -> str:
+        """The one line for a failed write: what failed, where the run stopped, how to go on."""
+        last = self.last_good_checkpoint()
+        then = (f"then resume with: {self.resume_command()}" if last else
+                f"then start again with: eddybox run {self.config.source} --out {self.out} "
+                "--overwrite (nothing to resume)")
+        return (f"writing output failed: {exc}. The run stopped at t={self.t:.6g} (step "
+                f"{self.step}); last good checkpoint: {last or 'none'}. Free space or fix the "
+                f"folder, {then}")
+
+    def _log_quietly(self, msg):
+        try:
+            self.log.write(msg)
+        except OSError:  # the log's own disk may be the full one
+            pass
 
     def _check_finite(self):
         if self.particles is not None and not self.particles.finite():
@@ -383,18 +562,31 @@ class Simulation:
                                        f"t={self.t:.6g} (step {self.step})")
 
     def _stop_requested(self, walltime, step_times):
-        sig = self.layout.bcast(self._stop_signal)
+        sig = self._signal_on_any_rank()
         if sig:
             return f"signal {sig}"
         if walltime is not None:
+            # the budget of this invocation: from its start (imports and set-up included), not
+            # the run's whole life across restarts
             recent = max(step_times[-5:])
             margin = 2.0 * recent + 2.0 * getattr(self, "_t_checkpoint", recent) + 1.0
-            if self.layout.bcast(self.wall_time() + margin >= walltime):
+            used = _time.monotonic() - self.started
+            if self.layout.bcast(used + margin >= walltime):
                 return f"wall-time budget {walltime:g} s (margin {margin:.1f} s)"
         return None
 
     def close(self):
+        """Close every file and release the folder's lock (idempotent)."""
         for h in self.hooks:
-            h.close()
+            try:
+                h.close()
+            except OSError:
+                pass  # a failed write was reported already
         if self.log:
-            self.log.close()
+            try:
+                self.log.close()
+            except OSError:
+                pass
+        if self.lock is not None:
+            self.lock.release()
+            self.lock = None

@@ -127,10 +127,26 @@ def load_calibration(path=None):
         raise ConfigError(f"--calibration {path}: no such file")
     if os.path.exists(p):
         try:
-            cal = json.loads(open(p).read())
-            cal["fluid_model"]
+            with open(p) as fh:
+                cal = json.loads(fh.read(1 << 20))
+            _check_calibration(cal)
             return cal
-        except (ValueError, KeyError) as exc:
+        except (OSError, ValueError, KeyError, TypeError) as exc:
             if path is not None:
                 raise ConfigError(f"--calibration {path}: not an eddybox calibration ({exc})") from None
     return None
+
+
+def _check_calibration(cal):
+    """ValueError unless the fitted coefficients and measured figures are finite and >= 0, the
+    velocity ratio and threads > 0 (else: negative or infinite times and core-hours)."""
+    m = cal["fluid_model"]
+    figures = {"fluid_model.a": m["a"], "fluid_model.b": m["b"]}
+    figures.update((k, v) for k, v in cal.items() if k in (
+        "threads", "umax_over_urms", "interp_seconds_per_particle", "pair_seconds",
+        "memory_overhead_bytes"))
+    for k, v in figures.items():
+        positive = k in ("threads", "umax_over_urms")  # divisors and multipliers of the time
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) \
+                or v < 0 or (positive and v == 0):
+            raise ValueError(f"{k} = {v!r} is not a finite number {'>' if positive else '>='} 0")

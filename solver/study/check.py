@@ -7,7 +7,7 @@ import math
 import numpy as np
 
 from eddybox.solver.run import scales
-from eddybox.solver.run.inventory import human_bytes, predicted_inventory
+from eddybox.solver.run.inventory import human_bytes, machine_memory, memory_needed, predicted_inventory
 
 
 def check_lines(cfg) -> list[str]:
@@ -24,7 +24,12 @@ def check_lines(cfg) -> list[str]:
                 f"  Kolmogorov time tau_eta    {p['tau_eta']:.5g}  = (nu/eps)^(1/2)",
                 f"  k_max eta                  {p['kmax_eta']:.3g}",
                 f"  u' (estimate)              {p['u_rms_estimate']:.3g}  from eps = {scales.C_EPS} u'^3/L, L = {scales.INTEGRAL_OVER_FORCING_WAVELENGTH} x forcing wavelength",
-                f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))"]
+                f"  Re_lambda (estimate)       {p['re_lambda_estimate']:.3g}  = u'^2 sqrt(15/(nu eps))",
+                f"  T_E = L/u' (estimate)      {p['eddy_time_estimate']:.3g}  large-eddy turnover time"]
+        _, eddy = scales.resolve_eddy_times(cfg)
+        for key, rec in eddy.items():
+            if isinstance(rec, dict):
+                out.append(f"  {key:26s} {rec['given']} = {rec['value']:.4g}  (with the T_E above)")
         if p["kmax_eta"] < 1.0:
             warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
                             "resolved; use more grid.points or a larger fluid.viscosity "
@@ -51,6 +56,10 @@ def check_lines(cfg) -> list[str]:
     n3 = cfg.grid.points ** 3
     out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
     out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
+    need = memory_needed(cfg)
+    peak = sum(need.values())
+    out += [f"  at the peak, with the largest temporary arrays and the process itself: "
+            f"{human_bytes(peak)} of {human_bytes(machine_memory())} on this machine"]
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
     return out
 

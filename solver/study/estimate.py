@@ -30,6 +30,8 @@ from eddybox.solver.study.calibration import STAGES, calibrate, load_calibration
 #: assumptions, override with --network-bandwidth / --network-latency)
 DEFAULT_BANDWIDTH = 2.0e9
 DEFAULT_LATENCY = 2.0e-6
+#: the largest rank count an estimate is made for
+MAX_RANKS = 1 << 24
 
 
 def transpose_bytes_per_transform(n, ranks, layout="auto"):
@@ -67,8 +69,15 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
 
     if n < 4 or n % 2:
         raise ConfigError(f"--points: expected an even integer >= 4, got {n}")
-    if ranks < 1:
-        raise ConfigError(f"--ranks: expected a positive integer, got {ranks}")
+    if not 1 <= ranks <= MAX_RANKS:
+        raise ConfigError(f"--ranks: expected an integer from 1 to {MAX_RANKS}, got {ranks}")
+    if particles is not None and not 1 <= particles <= 10**15:
+        raise ConfigError(f"--particles: expected an integer from 1 to 1e15, got {particles}")
+    for option, value, lo_open in (("--network-bandwidth", bandwidth, True),
+                                   ("--network-latency", latency, False)):
+        if value is not None and not (math.isfinite(value) and (value > 0 if lo_open else value >= 0)):
+            raise ConfigError(f"{option}: expected a finite number {'>' if lo_open else '>='} 0, "
+                              f"got {value}")
     layout = "serial"
     if ranks > 1:
         from eddybox.solver.fluid.mpi_layout import resolve_grid
@@ -93,8 +102,8 @@ def estimate(cfg, n: int, ranks: int, particles=None, bandwidth=None, latency=No
     inv = predicted_inventory(cfg, ranks, layout, particles_per_rank=-(-total_particles // ranks)
                               if sets else None)
     cal = cal or load_calibration() or calibrate()
-    bw = bandwidth or DEFAULT_BANDWIDTH
-    lat = latency or DEFAULT_LATENCY
+    bw = DEFAULT_BANDWIDTH if bandwidth is None else bandwidth
+    lat = DEFAULT_LATENCY if latency is None else latency
     # steps to the end time from the CFL condition at the predicted u'
     pred = scales.predicted(cfg)
     u = pred.get("u_rms_estimate")
@@ -136,6 +145,7 @@ def print_estimate(args):
     from eddybox.solver.run import config as cfgmod
 
     cfg = cfgmod.load(args.config, args.set)
+    job = job_options(args) if getattr(args, "job_script", None) else None
     cal = load_calibration(args.calibration) if args.calibration else None
     e = estimate(cfg, args.points, args.ranks, args.particles, args.network_bandwidth,
                  args.network_latency, cal)
@@ -160,3 +170,37 @@ def print_estimate(args):
     print("  u' from the forcing's target dissipation (eps = 0.5 u'^3 / L, L = 0.45 x forcing "
           "wavelength) or the initial energy; "
           "no allowance for I/O, checkpoints or queue time")
+    if job is not None:
+        write_job(args, cfg, e, *job)
+
+
+def job_options(args):
+    """The job-script options checked before anything is computed: (limit, forced limit)."""
+    import os
+
+    from eddybox.solver.fields import Duration
+    from eddybox.solver.study.jobscript import SCHEDULERS
+
+    if args.scheduler not in SCHEDULERS:
+        raise ConfigError(f"--scheduler: {args.scheduler!r} is not supported; choose one of "
+                          + ", ".join(SCHEDULERS))
+    if args.cores_per_node < 1:
+        raise ConfigError(f"--cores-per-node: expected a positive integer, got {args.cores_per_node}")
+    if not (math.isfinite(args.margin) and 0.0 <= args.margin <= 10.0):
+        raise ConfigError(f"--margin: expected a number between 0 and 10, got {args.margin}")
+    if os.path.exists(args.job_script):
+        raise ConfigError(f"--job-script {args.job_script}: exists; give a new file name")
+    return (Duration(none_ok=True).check("--max-walltime", args.max_walltime),
+            Duration(none_ok=True).check("--job-walltime", args.job_walltime))
+
+
+def write_job(args, cfg, e, limit, forced):
+    """`--job-script`: the batch script of the run's restart chain (solver.study.jobscript)."""
+    from eddybox.solver.study.jobscript import plan_job, write_job_script
+
+    out = args.out or str(cfg.output)
+    job = plan_job(args.config, out, cfg.name, e, args.cores_per_node, args.margin, limit, forced)
+    path = write_job_script(args.job_script, job, args.scheduler)
+    print(f"job script ({args.scheduler}) written to {path}: {job.nodes} node(s), {job.ranks} "
+          f"rank(s), limit {job.limit_seconds} s, time.walltime {job.budget_seconds} s; submit "
+          "it once, it resubmits itself until the run is done")

@@ -77,8 +77,13 @@ def _pm(v, e) -> str:
 def inspect_file(path) -> str:
     lines = [f"{path}:"]
     from eddybox.solver.run.repair import needs_repair
+    from eddybox.solver.run.run_folder import folder_of, lock_holder
 
-    if needs_repair(path):
+    holder = lock_holder(folder_of(path))
+    if holder is not None:
+        lines.append(f"  being written by a running eddybox (PID {holder.get('pid', '?')}); "
+                     "read it with h5py.File(path, 'r', swmr=True)")
+    elif needs_repair(path):
         lines.append("  not closed by its writer (killed run): readable with h5py.File(path, 'r', "
                      "swmr=True); 'eddybox inspect --repair' makes it readable everywhere")
     try:
@@ -108,11 +113,17 @@ def inspect_path(path) -> str:
     if not os.path.exists(path):
         raise ConfigError(f"{path}: no such file or folder")
     if os.path.isdir(path):
+        from eddybox.solver.run.run_folder import lock_holder
+
         out = [f"run folder {path}:"]
         files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5")
                  if os.path.exists(os.path.join(path, n))]
         if not files and not os.path.exists(os.path.join(path, "config.yaml")):
             raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")
+        holder = lock_holder(path)
+        if holder is not None:
+            out.append(f"  status: running (PID {holder.get('pid', '?')}, started "
+                       f"{holder.get('started', '?')})")
         ck = os.path.join(path, "checkpoints")
         if os.path.isdir(ck):
             out.append(f"  checkpoints: {', '.join(sorted(os.listdir(ck))) or 'none'}")

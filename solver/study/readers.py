@@ -378,8 +378,12 @@ def pair_table(run_dirs, names=None, t_min: float | None = None) -> PairTable:
         path = path / "pairs.h5" if path.is_dir() else path
         if not path.is_file():
             continue
-        for group in list_pair_groups(path):
-            series = read_pair_group(path, group)
+        try:
+            groups = [read_pair_group(path, g) for g in list_pair_groups(path)]
+        except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError) as exc:
+            raise ConfigError(f"{path}: not a readable pairs file of eddybox ({exc})") from None
+        for series in groups:
+            group = series.group
             if series.n_samples == 0:
                 continue
             avg = time_average(series, t_min)

@@ -16,6 +16,7 @@ import csv
 import datetime
 import html
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -236,7 +237,11 @@ def load_run(run_dir, name=None, table=None) -> Run:
         table = pair_table([path], [name])
     rows = table.select(table.columns["run"] == name) if len(table) else table
     length = float(config.get("grid", {}).get("length", 2 * math.pi))
-    return Run(name, path, config, series, est, read_spectra(path), rows, read_pdfs(path, length))
+    try:
+        pdfs = read_pdfs(path, length)
+    except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError) as exc:
+        raise ConfigError(f"{path / 'pairs.h5'}: not a readable pairs file of eddybox ({exc})") from None
+    return Run(name, path, config, series, est, read_spectra(path), rows, pdfs)
 
 
 def pair_groups(run: Run) -> list[str]:
@@ -731,6 +736,14 @@ def write_csv(runs, path):
                     r0, ge, ke = small_r(ps)
                     row += [repr(r0), repr(ge.mean), repr(ge.stderr), repr(ke.mean), repr(ke.stderr)]
             w.writerow(row)
+
+
+def default_report_folder(run_dirs) -> Path:
+    """RUN_DIR/report for one run; for several, report/ in the folder that holds them all."""
+    paths = [Path(d).resolve() for d in run_dirs]
+    if len(paths) == 1:
+        return paths[0] / "report"
+    return Path(os.path.commonpath([str(p.parent) for p in paths])) / "report"
 
 
 def write_report(run_dirs, out_dir, separation: float = 1.0) -> Path:

@@ -34,16 +34,17 @@ from pathlib import Path
 
 import yaml
 
-from eddybox.solver.errors import EXIT_DONE, EXIT_STOPPED, ConfigError
+from eddybox.solver.errors import EXIT_DONE, EXIT_NOTHING_TO_RESUME, EXIT_STOPPED, ConfigError
 from eddybox.solver.fluid.fft import available_cores
 from eddybox.solver.run import config as cfgmod
 from eddybox.solver.run.checkpoint import latest_checkpoint
 from eddybox.solver.run.config import differing_keys
+from eddybox.solver.run.run_folder import check_replaceable, refuse_if_locked
 
 STATUS_FILE = "sweep_status.json"
 CONSOLE_DIR = ".console"
 _SAFE = re.compile(r"[^A-Za-z0-9._=+\-]+")
-_RUN_MARKERS = ("config.yaml", "log.txt", "fluid.h5", "checkpoints")
+_RUN_MARKERS = (".eddybox-run", "config.yaml", "log.txt", "fluid.h5", "checkpoints")
 
 
 @dataclass
@@ -218,6 +219,7 @@ def decide_action(run: SweepRun, recorded: dict | None) -> str:
         raise ConfigError(f"{folder}: exists and is not a folder; remove it or choose another --out")
     if not folder.is_dir() or not any(folder.iterdir()):
         return "start"
+    refuse_if_locked(str(folder), "the sweep")
     saved = _saved_config(folder)
     if saved is None and not any((folder / m).exists() for m in _RUN_MARKERS):
         raise ConfigError(f"{folder}: exists and is not an eddybox run folder; the sweep will not "
@@ -239,8 +241,9 @@ def decide_action(run: SweepRun, recorded: dict | None) -> str:
             done_hash = derived.get("config_hash")
         if last_log_message(folder).startswith("done:") and done_hash == run.config.hash():
             return "skip"
-    if latest_checkpoint(str(folder / "checkpoints")) is not None:
+    if latest_checkpoint(str(folder / "checkpoints"), verify=False) is not None:
         return "resume"
+    check_replaceable(str(folder))  # what `run --overwrite` would refuse, refused before any run
     return "overwrite"
 
 
@@ -253,19 +256,26 @@ def threads_per_run() -> int:
 
 
 def child_command(config_path, run: SweepRun) -> list[str]:
-    cmd = [sys.executable, "-m", "eddybox.solver.cli", "run", os.path.abspath(config_path)]
+    """`eddybox run` for one run: its config and overrides; an interrupted run continues from
+    its folder's own config.yaml, with the keys a restart may change set to the sweep's."""
+    cli = [sys.executable, "-m", "eddybox.solver.cli", "run"]
+    if run.action == "resume":
+        cmd = cli + ["--out", str(run.folder), "--quiet", "--restart", "latest"]
+        for key in cfgmod.restart_mutable_keys():
+            if key not in ("name", "output"):
+                cmd += ["--set", f"{key}={json.dumps(run.config.get(key))}"]
+        return cmd
+    cmd = cli + [os.path.abspath(config_path)]
     for pair in run.overrides:
         cmd += ["--set", pair]
     cmd += ["--out", str(run.folder), "--quiet"]
-    if run.action == "resume":
-        cmd += ["--restart", "latest"]
-    elif run.action == "overwrite":
+    if run.action == "overwrite":
         cmd += ["--overwrite"]
     return cmd
 
 
 class _StopFlag:
-    """Set by SIGTERM/SIGINT; the scheduling loop checks it between polls, so a signal never
+    """Set by SIGTERM/SIGINT/SIGUSR1; the scheduling loop checks it between polls, so a signal never
     lands between launching a child and recording it."""
 
     def __init__(self):
@@ -298,7 +308,7 @@ def execute(config_path, runs: list[SweepRun], root: Path, jobs: int, threads: i
     running = {}
     stop = _StopFlag()
     old = {}
-    for s in (signal.SIGTERM, signal.SIGINT):
+    for s in (signal.SIGTERM, signal.SIGINT, signal.SIGUSR1):
         try:
             old[s] = signal.signal(s, stop)
         except ValueError:  # not the main thread: leave signals alone
@@ -395,6 +405,9 @@ def summary_table(runs: list[SweepRun], keys: list[str]) -> str:
     if any(r.code == EXIT_STOPPED for r in runs):
         notes.append("exit 75: stopped early after a checkpoint; run the same sweep command "
                      "again to resume")
+    if any(r.code == EXIT_NOTHING_TO_RESUME for r in runs):
+        notes.append("exit 76: stopped before its first checkpoint; run the same sweep command "
+                     "again to start it over")
     return "\n".join(out + notes)
 
 
