@@ -231,12 +231,6 @@ def clip_separations(edges_units: np.ndarray, eta: float, length: float, spacing
                  f"{limit:.4g} eta")
 
 
-def pair_histogram_bytes(groups: int, r_bins: int, wr_bins: int) -> int:
-    """Memory of the w_r histograms: the kernel's per-chunk copies (one group at a time), and
-    per group the running sums and the sample record."""
-    return (pairs_kernel.histogram_chunks() + 2 * groups) * r_bins * wr_bins * 8
-
-
 class PairHook(_LazyFileHook):
     """Pair statistics of every set and, with `cross`, of every two sets, appended to
     /pairs/<a>__<b> in pairs.h5; /pairs/<group>/running holds the pooled averages over the
@@ -506,10 +500,6 @@ class PairHook(_LazyFileHook):
                          "subsample_above": float(self.edges_units[self.k_sub]) if self.k_sub is not None else 0.0}
         return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
                           group_attrs=gattrs, sample_scales=scales)
-
-    def inventory(self) -> dict:
-        nw = self.c.wr_bins
-        return {"pair_histograms": pair_histogram_bytes(len(self.groups), len(self.edges_units) - 1, nw)}
 
     # -- checkpoints ----------------------------------------------------------------------------
     def state(self):

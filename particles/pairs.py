@@ -62,7 +62,6 @@ __all__ = [
     "separation_wr_edges",
     "velocity_rms_1comp",
     "cell_count",
-    "histogram_chunks",
     "snap_to_edge",
     "subset_indices",
 ]
@@ -665,11 +664,6 @@ def _sorted_by_cell(pos, vel, box_length, ncell):
     return soa, start
 
 
-def histogram_chunks() -> int:
-    """Histogram copies one kernel call allocates by default (one per independent work chunk)."""
-    return max(_DEFAULT_CHUNKS, numba.get_num_threads())
-
-
 def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell, nchunks):
     """Counts, w_r histogram, under/overflow and the five sums for one range of bins."""
     same = pos_b is None
@@ -683,7 +677,7 @@ def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell
         raise ValueError(f"ncell = {ncell} gives cells smaller than r_max = {r_max}; "
                          f"allowed 1..{max_cells}")
     if nchunks is None:
-        nchunks = histogram_chunks()
+        nchunks = max(_DEFAULT_CHUNKS, numba.get_num_threads())
     nr, nw = r_edges.size - 1, wr_edges.shape[1] - 1
     hist = np.zeros((nchunks, nr * nw), dtype=np.int64)
     under = np.zeros((nchunks, nr), dtype=np.int64)
@@ -728,29 +722,30 @@ def _wr_guess(wr_edges):
     is the bit index of the row's first cell.  Mode 2 (binary search) when a table would need
     more than ``_W_TABLE_MAX`` cells per row."""
     nr, nw = wr_edges.shape[0], wr_edges.shape[1] - 1
-    lo, hi = wr_edges[:, 0], wr_edges[:, -1]
-    dw = np.diff(wr_edges, axis=1)
-    if np.allclose(dw, dw[:, :1], rtol=1e-12, atol=0.0):
+    # row by row: temporaries of one row at a time
+    uniform, rel, smallest, largest = True, np.inf, np.empty(nr), np.empty(nr)
+    for k, row in enumerate(wr_edges):
+        dw = np.diff(row)
+        uniform = uniform and bool(np.allclose(dw, dw[0], rtol=1e-12, atol=0.0))
+        rel = min(rel, float(np.min(dw / np.maximum(np.abs(row[1:]), np.abs(row[:-1])))))
+        mag = np.abs(row)
+        smallest[k] = mag[mag > 0].min() if np.any(mag > 0) else 1.0
+        largest[k] = mag.max()
+    if uniform:
+        lo, hi = wr_edges[:, 0], wr_edges[:, -1]
         return 0, np.ascontiguousarray(np.stack([lo, nw / (hi - lo)], axis=1)), \
-            np.zeros((nr, 1, 2), np.int64), 0
-    size = np.maximum(np.abs(wr_edges[:, 1:]), np.abs(wr_edges[:, :-1]))
-    rel = float(np.min(dw / size))
+            np.zeros((nr, 1, 2), np.int32), 0
     sub = int(min(10, max(1, math.ceil(math.log2(1.0 / rel)) + 1)))
     shift = 52 - sub
-    mag = np.abs(wr_edges)
-    smallest = np.array([row[row > 0].min() if np.any(row > 0) else 1.0 for row in mag])
-    q0 = (np.maximum(0.5 * smallest, 1e-300).view(np.int64) >> shift)
-    q1 = (mag.max(axis=1).view(np.int64) >> shift) + 1
-    nq = int(np.max(q1 - q0)) + 1
+    q0 = np.maximum(0.5 * smallest, 1e-300).view(np.int64) >> shift
+    nq = int(np.max((largest.view(np.int64) >> shift) + 1 - q0)) + 1
     if nq > _W_TABLE_MAX:
-        return 2, np.zeros((nr, 2)), np.zeros((nr, 1, 2), np.int64), 0
-    cells = q0[:, None] + np.arange(nq + 1)[None, :]  # cell q spans [x_q, x_{q+1})
-    x = (cells << shift).view(np.float64)
-    table = np.empty((nr, nq, 2), np.int64)
+        return 2, np.zeros((nr, 2)), np.zeros((nr, 1, 2), np.int32), 0
+    table = np.empty((nr, nq, 2), np.int32)
     for k in range(nr):
-        row = wr_edges[k]
-        table[k, :, 0] = np.searchsorted(row, x[k, :-1], side="right") - 1
-        table[k, :, 1] = np.searchsorted(row, -x[k, 1:], side="right") - 1
+        x = ((q0[k] + np.arange(nq + 1)) << shift).view(np.float64)  # cell q: [x_q, x_q+1)
+        table[k, :, 0] = np.searchsorted(wr_edges[k], x[:-1], side="right") - 1
+        table[k, :, 1] = np.searchsorted(wr_edges[k], -x[1:], side="right") - 1
     np.clip(table, 0, nw - 1, out=table)
     wpar = np.stack([q0.astype(np.float64), np.zeros(nr)], axis=1)
     return 1, wpar, table, shift

@@ -13,7 +13,6 @@ import pytest
 
 from eddybox.solver.cli import main
 from eddybox.solver.errors import ConfigError
-from eddybox.solver.run.inventory import live_inventory, predicted_inventory
 from eddybox.solver.run.simulation import Simulation
 from eddybox.solver.study.check import check_lines
 from tests.conftest import make_config
@@ -164,7 +163,6 @@ def test_r_max_beyond_the_box_is_clipped_with_warnings(config_factory, capsys):
                          stats=_pairs(every=0.1, r_max=400.0))
     text = "\n".join(check_lines(cfg))
     assert "clipped" in text.split("warnings:")[1]
-    assert "pair_histograms" in text
     sim = Simulation(cfg, overwrite=True, quiet=True)
     assert sim.run() == 0
     log = open(sim.out + "/log.txt").read()
@@ -174,17 +172,3 @@ def test_r_max_beyond_the_box_is_clipped_with_warnings(config_factory, capsys):
         r_max = g["r_edges"][-1] * g["eta"][0]
         assert g.attrs["r_max_requested"] == 400.0 and r_max == pytest.approx(0.45 * 2 * np.pi)
         assert g["counts"].shape[0] == 4
-
-
-def test_histogram_memory_is_in_the_inventory(config_factory):
-    cfg = config_factory(particles={"release": 0.0, "sets": [{"name": "a", "stokes": 1.0, "count": 50},
-                                                             {"name": "b", "stokes": 2.0, "count": 50}]},
-                         stats=_pairs(every=0.1, units="box", r_max=0.5, cross=True))
-    inv = predicted_inventory(cfg)
-    # three groups (a, b, a x b) of 8 x 31 int64 histograms: running sums and one record each,
-    # plus the kernel's chunk copies
-    from eddybox.particles.pairs import histogram_chunks
-
-    assert inv["pair_histograms"] == (histogram_chunks() + 2 * 3) * 8 * 31 * 8
-    sim = Simulation(cfg, overwrite=True, quiet=True)
-    assert live_inventory(sim) == inv

@@ -58,13 +58,6 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
         g = ghost_field_bytes(n, order, ranks, layout, cfg.parallel.grid)
         if g:
             inv["ghosted_velocity"] = g
-        pr = cfg.stats.pairs
-        if pr.every is not None:
-            from eddybox.particles.hooks import pair_histogram_bytes
-
-            k = len(p.sets)
-            groups = k + (k * (k - 1) // 2 if pr.cross else 0)
-            inv["pair_histograms"] = pair_histogram_bytes(groups, pr.bins, pr.wr_bins)
     return inv
 
 
@@ -82,8 +75,6 @@ def live_inventory(sim) -> dict:
         inv["transpose_buffers"] = sim.layout.buffer_bytes()
     if sim.particles is not None:
         inv.update(sim.particles.inventory())
-    for h in sim.hooks:
-        inv.update(getattr(h, "inventory", dict)())
     return inv
 
 
@@ -123,8 +114,10 @@ def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
             groups = sets + (sets * (sets - 1) // 2 if pr.cross else 0)
             h = pr.bins * pr.wr_bins * 8
             # the kernel's chunks, their sum and the sample's histogram; per group the running
-            # sum, the record and (first sample) the zeros the file is created with
-            tmp["pair_histograms"] = h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
+            # sum, the record, (first sample) the zeros the file is created with, and its rows
+            # of w_r edges (one per separation bin)
+            tmp["pair_histograms"] = (h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
+                                      + groups * pr.bins * (pr.wr_bins + 1) * 8)
     return tmp
 
 
