@@ -140,10 +140,6 @@ def test_eta_units_in_a_flow_without_dissipation_are_refused(config_factory):
         config_factory(fluid={"viscosity": 0.05, "initial": {"kind": "rest"}},
                        particles={"release": 0.0, "sets": [{"name": "a", "tau_p": 1.0, "count": 10}]},
                        stats=_pairs(every=0.1))
-    # a Stokes number needs tau_eta, undefined in a flow that stays at rest
-    with pytest.raises(ConfigError, match=r"particles.sets.0.stokes"):
-        config_factory(fluid={"viscosity": 0.05, "initial": {"kind": "rest"}, "frozen": True},
-                       particles={"release": 0.0, "sets": [{"name": "a", "stokes": 1.0, "count": 10}]})
     with pytest.raises(ConfigError, match="stats.pairs.start"):
         config_factory(particles={"release": 0.0, "sets": [{"name": "a", "stokes": 1.0, "count": 10}]},
                        stats=_pairs(every=0.1, start=5.0))

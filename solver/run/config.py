@@ -346,15 +346,6 @@ def _cross_checks(c: RunConfig):
                               f"{c.time.end}; particles would never move")
         if any(s.radius is not None for s in p.sets) and p.physical is None:
             raise ConfigError("particles.physical: required when a set gives radius and density")
-    # a flow at rest has no dissipation, hence no tau_eta or eta: for ever, or at a release at 0
-    still = c.fluid.initial.kind == "rest" and (c.fluid.frozen or c.forcing.kind in ("none", "linear"))
-    rest_at_release = c.fluid.initial.kind == "rest" and (still or p.release == 0.0)
-    why = "stays at rest" if still else "is at rest at the release (t = 0)"
-    for i, s in enumerate(p.sets):
-        if rest_at_release and s.stokes is not None:
-            raise ConfigError(f"particles.sets.{i}.stokes: the flow {why}, so tau_eta and a "
-                              "Stokes number are undefined; give tau_p instead, or release the "
-                              "particles later (particles.release)")
     pr = c.stats.pairs
     if pr.every is not None:
         if not p.sets:
@@ -365,7 +356,11 @@ def _cross_checks(c: RunConfig):
         if pr.start != "auto" and pr.start >= c.time.end:
             raise ConfigError(f"stats.pairs.start: {pr.start:g} is not before time.end "
                               f"{c.time.end:g}; no sample would be averaged")
-        if pr.units == "eta" and rest_at_release:
+        # a flow at rest has no dissipation, hence no eta: for ever, or at a release at t = 0
+        still = c.fluid.initial.kind == "rest" and (
+            c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
+        if pr.units == "eta" and c.fluid.initial.kind == "rest" and (still or p.release == 0.0):
+            why = "stays at rest" if still else "is at rest at the release (t = 0)"
             raise ConfigError(f"stats.pairs.units: 'eta' needs the Kolmogorov length, but the "
                               f"flow {why} and has no dissipation; use units: box, or release "
                               "the particles later (particles.release)")
