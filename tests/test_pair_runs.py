@@ -168,3 +168,22 @@ def test_r_max_beyond_the_box_is_clipped_with_warnings(config_factory, capsys):
         r_max = g["r_edges"][-1] * g["eta"][0]
         assert g.attrs["r_max_requested"] == 400.0 and r_max == pytest.approx(0.45 * 2 * np.pi)
         assert g["counts"].shape[0] == 4
+
+
+def test_report_writes_the_tidy_table_and_only_files_a_rerun_may_replace(auto_run):
+    # pairs.csv holds every curve (3 groups x 8 bins); every file of the report is one that
+    # `--overwrite` recognises as eddybox's (run_folder.foreign_entries)
+    import csv
+    from pathlib import Path
+
+    from eddybox.solver.run.run_folder import foreign_entries
+    from eddybox.solver.study.report import write_report
+
+    out = Path(auto_run) / "report"
+    write_report([auto_run], out)
+    with open(out / "pairs.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 24 and {r["set_a"] for r in rows} == {"light", "tracers"}
+    assert all(r["window"].startswith("t >= ") for r in rows)
+    assert (out / "pairs_stokes_0.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature
+    assert foreign_entries(auto_run) == []
