@@ -79,6 +79,8 @@ def _parser():
 
     i = sub.add_parser("inspect", help="summarise an output file or run folder")
     i.add_argument("path")
+    i.add_argument("--datasets", action="store_true",
+                   help="list every dataset of a checkpoint, not only its summary")
     i.add_argument("--repair", action="store_true",
                    help="first make files left by a killed run readable by plain HDF5 readers")
 
@@ -264,7 +266,7 @@ def cmd_inspect(args, comm=None):
                          "inspect --repair")
         for f in repair_path(args.path):
             print(f"repaired {f} (its writer had been killed; every flushed sample kept)")
-    print(inspect_path(args.path))
+    print(inspect_path(args.path, args.datasets))
     return EXIT_DONE
 
 

@@ -159,3 +159,55 @@ def test_job_script_does_not_resubmit_after_a_signal(config, tmp_path, capsys):
     os.killpg(p.pid, signal.SIGTERM)  # what a scheduler does to a cancelled job: every process
     stdout, _ = p.communicate(timeout=120)
     assert p.returncode == 75 and "not submitting" in stdout and not queue.exists()
+
+
+def test_spin_up_once_study_many(config, tmp_path, capsys):
+    spin = tmp_path / "spin"
+    assert main(["run", str(config), "--out", str(spin), "--quiet", "--set", "time.end=1.0",
+                 "--set", "forcing.calibrate=0.5"]) == 0
+    newest = sorted((spin / "checkpoints").glob("checkpoint_*.h5"))[-1]
+    study = dict(BASE, fluid={"viscosity": 0.03, "initial": {"kind": "file", "path": str(spin)}},
+                 time={"end": 0.3, "max_dt": 0.05},
+                 particles={"release": 0.0, "sets": [{"name": "st", "stokes": [0.5, 2.0], "count": 200}]})
+    path = tmp_path / "study.yaml"
+    path.write_text(yaml.safe_dump(study))
+    out = tmp_path / "study"
+    assert main(["run", str(path), "--out", str(out), "--quiet"]) == 0
+    src = yaml.safe_load((out / "config.yaml").read_text())["derived"]["initial_source"]
+    assert src["file"] == str(newest) and src["run_folder"] == str(spin)
+    with h5py.File(newest) as f:
+        assert src["step"] == int(f.attrs["step"]) and src["config_hash"] == f.attrs["config_hash"]
+    spin_derived = yaml.safe_load((spin / "config.yaml").read_text())["derived"]
+    assert src["forcing_calibrated_variance"] == spin_derived["forcing_calibration"]["variance"]
+    # the study starts from the spin-up's last field: the same energy at t = 0 (Parseval)
+    with h5py.File(spin / "fluid.h5") as a, h5py.File(out / "fluid.h5") as b:
+        assert b["series/energy"][0] == pytest.approx(a["series/energy"][-1], rel=1e-12)
+    log = (out / "log.txt").read_text()
+    assert f"initial field from {newest}" in log and "set forcing.variance" in log
+    # a folder with no intact checkpoint is refused, naming the key
+    (tmp_path / "nothing").mkdir()
+    path.write_text(yaml.safe_dump(dict(study, fluid={"viscosity": 0.03, "initial": {
+        "kind": "file", "path": str(tmp_path / "nothing")}})))
+    capsys.readouterr()
+    assert main(["run", str(path), "--out", str(tmp_path / "x"), "--quiet"]) == 2
+    assert "fluid.initial.path" in capsys.readouterr().err
+
+
+def test_inspect_a_checkpoint_gives_a_human_summary(config, tmp_path, capsys):
+    out = tmp_path / "i"
+    cfg = dict(BASE, time={"end": 0.3, "max_dt": 0.05},
+               particles={"release": 0.0, "sets": [{"name": "st", "stokes": [2.0, 0.5], "count": 300}]})
+    path = tmp_path / "i.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    assert main(["run", str(path), "--out", str(out), "--quiet"]) == 0
+    ck = sorted((out / "checkpoints").glob("*.h5"))[-1]
+    capsys.readouterr()
+    assert main(["inspect", str(ck)]) == 0
+    text = capsys.readouterr().out
+    assert "checkpoint at t = 0.3, step 6" in text and "16^3" in text
+    assert "forcing ou: variance sigma^2 =" in text and "checksums: every dataset verifies" in text
+    rows = [ln.split() for ln in text.splitlines() if ln.startswith("    st")]
+    assert [r[0] for r in rows] == ["st2", "st0.5"] and all(r[1] == "300" for r in rows)
+    assert len(text.splitlines()) < 30
+    assert main(["inspect", "--datasets", str(ck)]) == 0
+    assert "state/forcing/b" in capsys.readouterr().out

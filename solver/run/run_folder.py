@@ -41,7 +41,7 @@ _FILES = re.compile(r"(?:config\.yaml(?:\.tmp\d+)?|log\.txt|(?:fluid|particles|p
 _FOLDERS = {
     "checkpoints": (re.compile(_CHECKPOINT + r"(?:\.tmp\d+)?"), {_SET_ASIDE: re.compile(_CHECKPOINT)}),
     "fields": (re.compile(r"field_\d+\.h5(?:\.tmp)?|" + _FIELD), {_SET_ASIDE: re.compile(_FIELD)}),
-    "report": (re.compile(r"index\.html|(?:summary|pairs)\.csv|[A-Za-z0-9_.=+\-]+\.png"), {}),
+    "report": (re.compile(r"[A-Za-z0-9_.=+\-]+\.(?:html|csv|png)"), {}),
 }
 #: temporary files left by writes that were killed (removed when a run takes its folder over)
 _TEMPORARY = re.compile(r".*\.h5\.(?:tmp\d*|rebuild|repair)|config\.yaml\.tmp\d+")

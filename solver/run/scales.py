@@ -122,5 +122,7 @@ def derived_block(config, sim=None) -> dict:
         out["ranks"] = int(sim.layout.size)
         if sim.eddy_times:
             out["eddy_times"] = sim.eddy_times
+        if getattr(sim, "initial_source", None):
+            out["initial_source"] = sim.initial_source
         out.update(sim.forcing.derived())
     return out

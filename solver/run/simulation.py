@@ -38,6 +38,7 @@ from eddybox.solver.fluid.layout import make_layout
 from eddybox.solver.fluid.navier_stokes import NonlinearTerm
 from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
 from eddybox.solver.run import checkpoint as ckpt
+from eddybox.solver.run import spin_up
 from eddybox.solver.run import run_folder, scales, stops
 from eddybox.solver.run.config import differing_keys, restart_mutable_keys
 from eddybox.solver.run.hooks import FieldsHook, FluidHook, Schedule
@@ -120,6 +121,7 @@ class Simulation:
         self.t, self.step, self.dt, self.cfl = 0.0, 0, 0.0, 0.0
         self._frozen_umax = None
         self.restart_from = None
+        self.initial_source = None
         self.wall_offset = 0.0
         self.last_checkpoint = None
         self.log.write(f"eddybox run: {config.summary()}")
@@ -135,8 +137,19 @@ class Simulation:
             restart_path, ck = self._read_restart(restart)
             self._check_compatible(restart_path, ck[1])
         else:
+            initial = c.fluid.initial
+            if initial.kind == "file":
+                # a spin-up's run folder stands for its newest intact checkpoint
+                path = spin_up.resolve_initial_file(initial.path)
+                initial = config.with_changes({"fluid.initial.path": path}).fluid.initial
+                self.initial_source = spin_up.provenance(path)
+                self.log.write(f"initial field from {path} (t={self.initial_source.get('time', '?')}, "
+                               f"step {self.initial_source.get('step', '?')})")
+                note = spin_up.forcing_note(self.initial_source, self.forcing)
+                if note:
+                    self.log.write(note)
             try:
-                build_initial(c.fluid.initial, self.layout, self.nl, c.seed, self.uh)
+                build_initial(initial, self.layout, self.nl, c.seed, self.uh)
             except InitialFieldError as exc:
                 raise ConfigError(f"fluid.initial.path: {exc}") from None
 
