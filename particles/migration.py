@@ -601,7 +601,7 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
     same = pos_b is None
     comm = layout.comm
     r_edges = np.ascontiguousarray(r_edges, dtype=np.float64)
-    wr_edges = np.ascontiguousarray(wr_edges, dtype=np.float64)
+    wr_edges = pairs_kernel.wr_edge_rows(wr_edges, r_edges.size - 1)
     pos_a = np.ascontiguousarray(pos_a, dtype=np.float64).reshape(-1, 3)
     vel_a = np.ascontiguousarray(vel_a, dtype=np.float64).reshape(-1, 3)
     if not same:
@@ -671,7 +671,7 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
             sb = None if in_b is None else np.concatenate([in_b, got["in"]])
         parts.append(run(pos_a, vel_a, pb, vb, in_a, sb))
 
-    nw = wr_edges.size - 1
+    nw = wr_edges.shape[1] - 1
     acc = {"counts": np.zeros(nr, np.int64), "wr_hist": np.zeros((nr, nw), np.int64),
            "wr_under": np.zeros(nr, np.int64), "wr_over": np.zeros(nr, np.int64)}
     sums = np.zeros((len(_SUM_FIELDS), nr))

@@ -14,10 +14,12 @@ Definitions, per separation bin k (``r_edges[k] <= r < r_edges[k+1]``; pairs clo
   ``sum_inward`` = Σ w_r⁻ with w_r⁻ = −min(w_r, 0) ≥ 0 (approach speed of closing pairs, zero for
   separating pairs), ``sum_trans`` = Σ (|Δv|² − w_r²)/2 (squared transverse relative velocity per
   transverse component).  Means are sums / counts.
-* ``wr_hist[k, m]`` counts pairs with ``wr_edges[m] <= w_r < wr_edges[m+1]``.  Values below
-  ``wr_edges[0]`` go to the first bin and are also counted in ``wr_under``; values at or above
-  ``wr_edges[-1]`` go to the last bin and are also counted in ``wr_over``.  Hence
-  ``wr_hist.sum(axis=1) == counts`` always.
+* ``wr_hist[k, m]`` counts pairs with ``wr_edges[k, m] <= w_r < wr_edges[k, m+1]``: every
+  separation bin has its own row of w_r edges (a 1-D ``wr_edges`` is used for every bin), so
+  small separations, where w_r is small, get fine bins (see :func:`separation_wr_edges`).
+  Values below ``wr_edges[k, 0]`` go to the first bin and are also counted in ``wr_under``;
+  values at or above ``wr_edges[k, -1]`` go to the last bin and are also counted in
+  ``wr_over``.  Hence ``wr_hist.sum(axis=1) == counts`` always.
 
 Algorithm: cell lists with ``ncell = floor(L / r_max)`` cells per axis (cell side >= r_max; capped
 at about 8 cells per particle, as more cells would only be empty), so a pair closer than r_max
@@ -40,7 +42,8 @@ from typing import Sequence
 
 import numba
 import numpy as np
-from numba import njit, prange
+from numba import njit, prange, types
+from numba.extending import intrinsic
 
 __all__ = [
     "PairSample",
@@ -53,6 +56,10 @@ __all__ = [
     "bin_means",
     "pairs_record",
     "wr_edges_from_rms",
+    "sinh_wr_edges",
+    "wr_edge_rows",
+    "tracer_wr_rms",
+    "separation_wr_edges",
     "velocity_rms_1comp",
     "cell_count",
     "snap_to_edge",
@@ -105,7 +112,21 @@ def _cell_sort(pos, vel, box, ncell, cell_of, start, fill, soa):
             soa[3 + d, k] = vel[p, d]
 
 
+@intrinsic
+def _float_bits(typingctx, x):
+    """The IEEE-754 bit pattern of a float64 as an int64 (a register move).  For x >= 0 it
+    grows with x, and its top bits are a piecewise-linear log2(x): exponent, then mantissa."""
+    if not (isinstance(x, types.Float) and x.bitwidth == 64):
+        return None
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.int64))
+
+    return types.int64(types.float64), codegen
+
+
 _R_TABLE_SIZE = 2048  # cells of the r -> bin lookup table
+_W_TABLE_MAX = 4096  # cells per separation bin of the w_r guess table, beyond: binary search
 # Histogram copies.  A fixed count makes the work split, hence the float sums, identical for
 # any thread count up to it (bitwise reproducible results).
 _DEFAULT_CHUNKS = 32
@@ -121,23 +142,28 @@ def _min_image(d, box, half):
 
 
 @njit(cache=True)
+def _settle_row(x, edges, e0, nb, m):
+    """The bin m of x (edges[e0 + m] <= x < edges[e0 + m + 1], clamped to the first and last of
+    the nb bins of the row that starts at edges[e0]), walked to from the guess m. Kept out of
+    line: called only when the guess is off, so the common path is one predictable comparison
+    (the walking loops inline cost a quarter of the pair kernel's time, measured)."""
+    while m > 0 and x < edges[e0 + m]:
+        m -= 1
+    while m < nb - 1 and x >= edges[e0 + m + 1]:
+        m += 1
+    return m
+
+
+@njit(cache=True)
 def _settle_bin(x, edges, k):
-    """The bin of x (edges[k] <= x < edges[k + 1], clamped to the first and last bin), walked
-    to from the guess k. Kept out of line: called only when the guess is off, so the common
-    path is one predictable comparison (the walking loops inline cost a quarter of the
-    pair kernel's time, measured)."""
-    nb = edges.shape[0] - 1
-    while k > 0 and x < edges[k]:
-        k -= 1
-    while k < nb - 1 and x >= edges[k + 1]:
-        k += 1
-    return k
+    """`_settle_row` on a 1-D array of edges."""
+    return _settle_row(x, edges, 0, edges.shape[0] - 1, k)
 
 
 @njit(cache=True)
 def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, prune, box,
-           r2_edges, rtable, inv_dr, wr_edges, w_uniform, w0, inv_dw, hist, under, over, sums,
-           r2buf, jbuf, kbuf, hbuf, wbuf, vbuf):
+           r2_edges, rtable, inv_dr, wr_edges, w_mode, wpar, wtable, w_shift, hist, under, over,
+           sums, r2buf, jbuf, kbuf, hbuf, wbuf, vbuf, rbuf):
     """Accumulate the pairs i in [i0, i1) of ``sa`` with j in [j0, j1) of ``sb`` (triangular:
     same range of the same set, only j > i) into one chunk's buffers.
 
@@ -145,13 +171,25 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
     offset (then the minimum image, since r_max < L/2), or, with ``min_image``, at the minimum
     image of x_j − x_i computed per pair.  With ``prune``, particle i skips the block when its
     distance to the partner cell's box [lo, hi] (unshifted coordinates) is at least r_max.
-    Each tile of partners is handled in passes: squared distances into ``r2buf`` (a branch-free
-    loop the compiler vectorises), indices of those inside the shell compacted into ``jbuf``
-    without branches, then only those pairs are binned.
+    Each tile of partners is handled in passes, each a short loop with one job (measured: the
+    split lets the compiler vectorise the arithmetic and keeps the branchy lookups short):
+    squared distances into ``r2buf`` (branch-free, vectorised); indices of those inside the
+    shell compacted into ``jbuf`` without branches; r, w_r and |Δv|² of the accepted pairs into
+    ``rbuf``, ``wbuf``, ``vbuf``; the separation bin k into ``kbuf``; the w_r bin into ``hbuf``;
+    then the scattered adds into the histograms and sums.
+
+    The w_r bin comes from row k of the flat ``wr_edges`` (one row of nw + 1 edges per
+    separation bin).  A first guess (``w_mode`` 0, uniform rows: (w − w0)/dw from ``wpar[k]``;
+    1: ``wtable``, indexed by the top bits of |w_r| above ``w_shift``, a piecewise-linear log2
+    with cells finer than the bins, offset by ``wpar[k, 0]``, positive w_r in column 0, negative
+    in column 1; 2: binary search) is settled on the exact stored edges, so the bin always agrees
+    with ``searchsorted`` on the row.  ``hbuf`` then holds the flat histogram index times 4 plus
+    0 (inside the row's range), 1 (below it) or 2 (above it).
     """
     half = 0.5 * box
     nr = r2_edges.shape[0] - 1
-    nw = wr_edges.shape[0] - 1  # hist is flat: index k * nw + m
+    nw = wr_edges.shape[0] // nr - 1  # hist is flat: index k * nw + m
+    nq = wtable.shape[1]
     nt = rtable.shape[0]
     r2min = r2_edges[0]
     r2max = r2_edges[nr]
@@ -190,12 +228,11 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
                 r2 = r2buf[q]
                 jbuf[nacc] = q
                 nacc += (r2 < r2max) & (r2 >= r2min)
-            # binning pass: bins and values into the scratch rows, no scattered stores (a store
-            # whose address waits on sqrt/div would serialise the loop)
+            # pair values into the scratch rows, no scattered stores (a store whose address
+            # waits on sqrt/div would serialise the loop)
             for a in range(nacc):
                 q = jbuf[a]
                 j = jt + q
-                r2 = r2buf[q]
                 dx = xb[j] - xi
                 dy = yb[j] - yi
                 dz = zb[j] - zi
@@ -203,47 +240,61 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
                     dx = _min_image(dx, box, half)
                     dy = _min_image(dy, box, half)
                     dz = _min_image(dz, box, half)
-                r = math.sqrt(r2)
-                # r-bin: table guess, settled on the exact r² edges (rarely more than one step)
-                k = rtable[min(int(r * inv_dr), nt - 1)]
-                if r2 < r2_edges[k] or r2 >= r2_edges[k + 1]:
-                    k = _settle_bin(r2, r2_edges, k)
                 du = ub[j] - ui
                 dv = vb[j] - vi
                 dw = wb[j] - wi
-                w = (du * dx + dv * dy + dw * dz) / r if r > 0.0 else 0.0
-                if w < wr_edges[0]:
+                r = math.sqrt(r2buf[q])
+                rbuf[a] = r
+                wbuf[a] = (du * dx + dv * dy + dw * dz) / r if r > 0.0 else 0.0
+                vbuf[a] = du * du + dv * dv + dw * dw
+            # r-bin: table guess, settled on the exact r² edges (rarely more than one step)
+            for a in range(nacc):
+                r2 = r2buf[jbuf[a]]
+                k = rtable[min(int(rbuf[a] * inv_dr), nt - 1)]
+                if r2 < r2_edges[k] or r2 >= r2_edges[k + 1]:
+                    k = _settle_bin(r2, r2_edges, k)
+                kbuf[a] = k
+            # w_r bin: a guess (one loop per mode), then settled on the exact edges of row k
+            if w_mode == 0:
+                for a in range(nacc):
+                    k = kbuf[a]
+                    hbuf[a] = min(max(int((wbuf[a] - wpar[k, 0]) * wpar[k, 1]), 0), nw - 1)
+            elif w_mode == 1:
+                for a in range(nacc):
+                    w = wbuf[a]
+                    q = (_float_bits(abs(w)) >> w_shift) - np.int64(wpar[kbuf[a], 0])
+                    hbuf[a] = wtable[kbuf[a], min(max(q, 0), nq - 1), 0 if w >= 0.0 else 1]
+            else:
+                for a in range(nacc):
+                    e0 = kbuf[a] * (nw + 1)
+                    w = wbuf[a]
                     m = 0
-                elif w >= wr_edges[nw]:
-                    m = nw - 1
-                elif w_uniform:
-                    m = min(max(int((w - w0) * inv_dw), 0), nw - 1)
-                    # corrections make the bin agree exactly with the stored edges
-                    if w < wr_edges[m] or w >= wr_edges[m + 1]:
-                        m = _settle_bin(w, wr_edges, m)
-                else:
-                    lo_w = 0
                     hi_w = nw
-                    while hi_w - lo_w > 1:
-                        mid = (lo_w + hi_w) >> 1
-                        if w >= wr_edges[mid]:
-                            lo_w = mid
+                    while hi_w - m > 1:
+                        mid = (m + hi_w) >> 1
+                        if w >= wr_edges[e0 + mid]:
+                            m = mid
                         else:
                             hi_w = mid
-                    m = lo_w
-                kbuf[a] = k
-                hbuf[a] = k * nw + m
-                wbuf[a] = w
-                vbuf[a] = du * du + dv * dv + dw * dw
+                    hbuf[a] = m
+            for a in range(nacc):
+                k = kbuf[a]
+                w = wbuf[a]
+                e0 = k * (nw + 1)
+                m = hbuf[a]
+                if w < wr_edges[e0 + m] or w >= wr_edges[e0 + m + 1]:
+                    m = _settle_row(w, wr_edges, e0, nw, m)
+                flag = (w < wr_edges[e0]) + 2 * (w >= wr_edges[e0 + nw])
+                hbuf[a] = 4 * (k * nw + m) + flag
             # accumulation pass
             for a in range(nacc):
                 k = kbuf[a]
                 w = wbuf[a]
-                hist[hbuf[a]] += 1
-                if w < wr_edges[0]:
-                    under[k] += 1
-                elif w >= wr_edges[nw]:
-                    over[k] += 1
+                h = hbuf[a]
+                hist[h >> 2] += 1
+                flag = h & 3
+                under[k] += flag == 1
+                over[k] += flag == 2
                 w2 = w * w
                 sums[k, 0] += w
                 sums[k, 1] += w2
@@ -254,8 +305,8 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
 
 @njit(cache=True, parallel=True)
 def _pair_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_edges, rtable, inv_dr,
-                 wr_edges, w_uniform, w0, inv_dw, hist, under, over, sums, scratch, iscratch,
-                 cellbox):
+                 wr_edges, w_mode, wpar, wtable, w_shift, hist, under, over, sums, scratch,
+                 iscratch, cellbox):
     """Parallel driver.  Work items are cells of set a (ncell >= 3: the cell's own pairs when
     ``same``, then one block per neighbour-cell offset) or single particles i (fallback: all
     pairs, minimum image per pair).
@@ -278,6 +329,7 @@ def _pair_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_edges, 
         r2buf_t = scratch[t, 0]
         wbuf_t = scratch[t, 1]
         vbuf_t = scratch[t, 2]
+        rbuf_t = scratch[t, 3]
         jbuf_t = iscratch[t, 0]
         kbuf_t = iscratch[t, 1]
         hbuf_t = iscratch[t, 2]
@@ -337,9 +389,9 @@ def _pair_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_edges, 
                 if j0 == j1:
                     continue
                 _block(sa, i0, i1, sb, j0, j1, triangular, not use_cells, sx, sy, sz, lo_t,
-                       hi_t, prune, box, r2_edges, rtable, inv_dr, wr_edges, w_uniform, w0,
-                       inv_dw, hist_t, under_t, over_t, sums_t, r2buf_t, jbuf_t, kbuf_t, hbuf_t,
-                       wbuf_t, vbuf_t)
+                       hi_t, prune, box, r2_edges, rtable, inv_dr, wr_edges, w_mode, wpar,
+                       wtable, w_shift, hist_t, under_t, over_t, sums_t, r2buf_t, jbuf_t, kbuf_t,
+                       hbuf_t, wbuf_t, vbuf_t, rbuf_t)
 
 
 # ----------------------------------------------------------------------------- helpers on arrays
@@ -423,6 +475,54 @@ def wr_edges_from_rms(rms_1comp: float, wr_bins: int = 101, span: float = 8.0) -
         raise ValueError(f"rms_1comp must be positive and finite, got {rms_1comp}")
     half = span * math.sqrt(2.0) * float(rms_1comp)
     return np.linspace(-half, half, wr_bins + 1)
+
+
+def sinh_wr_edges(core: float, w_max: float, wr_bins: int = 101) -> np.ndarray:
+    """w_r bin edges uniform in asinh(w_r / a): w_m = a sinh((m − n/2) du), m = 0..n, with
+    a = ``core``, n = ``wr_bins`` (odd: one bin centred on 0) and du = 2 asinh(w_max/a)/n, so the
+    edges span ±w_max.
+
+    Near zero (|w| < a) the bins are uniform, a·du wide; beyond a they grow geometrically, each
+    about du·|w| wide, a fixed relative resolution out to the far tails.  With a at the
+    narrowest distribution expected in a bin, one row resolves every wider one too.  (The same
+    map as the asinh magnitudes of Lupton, Gunn & Szalay 1999, Astron. J. 118, 1406, from
+    memory: linear near zero, logarithmic for large values of either sign.)"""
+    if wr_bins < 3 or wr_bins % 2 == 0:
+        raise ValueError(f"wr_bins must be an odd integer >= 3, got {wr_bins}")
+    if not (math.isfinite(core) and math.isfinite(w_max) and 0.0 < core and core < w_max):
+        raise ValueError(f"sinh w_r edges need 0 < core < w_max, got core={core}, w_max={w_max}")
+    du = 2.0 * math.asinh(w_max / core) / wr_bins
+    w = core * np.sinh((np.arange(wr_bins + 1) - 0.5 * wr_bins) * du)
+    w[0], w[-1] = -w_max, w_max
+    return w
+
+
+#: Kolmogorov's second-order constant C2 in D_LL = C2 (eps r)^(2/3) (Pope 2000, §6.2; from memory)
+C2_KOLMOGOROV = 2.0
+
+
+def tracer_wr_rms(r, dissipation: float, viscosity: float, u_rms: float) -> np.ndarray:
+    """Predicted rms of w_r for fluid tracers at separations ``r``: √D_LL(r), with the
+    longitudinal structure function from Batchelor's interpolation between the dissipation
+    and inertial ranges (Batchelor 1951, Proc. Camb. Phil. Soc. 47, 359; from memory),
+
+        D_LL(r) = (ε r² / 15ν) / (1 + (r / (c η))²)^(2/3),   c = (15 C2)^(3/4),
+
+    which tends to ε r²/(15ν) as r → 0 (⟨(∂u/∂x)²⟩ = ε/(15ν), Pope 2000 eq. 6.73) and to
+    C2 (ε r)^(2/3) in the inertial range, and is then capped smoothly at 2u′², the value for
+    uncorrelated velocities: σ² = 1/(1/D_LL + 1/(2u′²))."""
+    r = np.asarray(r, dtype=np.float64)
+    eta = (viscosity**3 / dissipation) ** 0.25
+    c = (15.0 * C2_KOLMOGOROV) ** 0.75
+    d_ll = dissipation * r * r / (15.0 * viscosity) / (1.0 + (r / (c * eta)) ** 2) ** (2.0 / 3.0)
+    return np.sqrt(1.0 / (1.0 / d_ll + 1.0 / (2.0 * u_rms * u_rms)))
+
+
+def separation_wr_edges(core, w_max: float, wr_bins: int = 101) -> np.ndarray:
+    """One sinh row (:func:`sinh_wr_edges`) per separation bin, row k with core ``core[k]`` and
+    the common far end ``w_max``: the (r-bins × (wr_bins + 1)) edges a run keeps fixed."""
+    core = np.asarray(core, dtype=np.float64)
+    return np.stack([sinh_wr_edges(float(min(a, w_max / 2.0)), w_max, wr_bins) for a in core])
 
 
 def velocity_rms_1comp(vel: np.ndarray, max_samples: int | None = None,
@@ -593,12 +693,12 @@ def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell
                          f"allowed 1..{max_cells}")
     if nchunks is None:
         nchunks = max(_DEFAULT_CHUNKS, numba.get_num_threads())
-    nr, nw = r_edges.size - 1, wr_edges.size - 1
+    nr, nw = r_edges.size - 1, wr_edges.shape[1] - 1
     hist = np.zeros((nchunks, nr * nw), dtype=np.int64)
     under = np.zeros((nchunks, nr), dtype=np.int64)
     over = np.zeros((nchunks, nr), dtype=np.int64)
     sums = np.zeros((nchunks, nr, _N_SUMS), dtype=np.float64)
-    scratch = np.empty((nchunks, 3, _TILE), dtype=np.float64)
+    scratch = np.empty((nchunks, 4, _TILE), dtype=np.float64)
     iscratch = np.empty((nchunks, 3, _TILE), dtype=np.int64)
     rtable, inv_dr = _r_bin_table(r_edges)
 
@@ -607,12 +707,11 @@ def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell
         sb, start_b = sa, start_a
     else:
         sb, start_b = _sorted_by_cell(pos_b, vel_b, box_length, ncell)
-    dw = np.diff(wr_edges)
-    w_uniform = bool(np.allclose(dw, dw[0], rtol=1e-12, atol=0.0))
+    w_mode, wpar, wtable, w_shift = _wr_guess(wr_edges)
     _pair_kernel(sa, start_a, sb, start_b, same, ncell, float(box_length),
                  _HALF_SHELL if same else _FULL_SHELL, r_edges * r_edges, rtable, inv_dr,
-                 wr_edges, w_uniform, float(wr_edges[0]), float(nw / (wr_edges[-1] - wr_edges[0])),
-                 hist, under, over, sums, scratch, iscratch, np.empty((nchunks, 2, 3)))
+                 wr_edges.reshape(-1), w_mode, wpar, wtable, w_shift, hist, under, over, sums,
+                 scratch, iscratch, np.empty((nchunks, 2, 3)))
     hist = hist.sum(axis=0).reshape(nr, nw)
     return hist.sum(axis=1), hist, under.sum(axis=0), over.sum(axis=0), sums.sum(axis=0).T
 
@@ -626,9 +725,52 @@ def _r_bin_table(r_edges, size=_R_TABLE_SIZE):
     return np.clip(table, 0, r_edges.size - 2).astype(np.int64), float(1.0 / dr)
 
 
+def _wr_guess(wr_edges):
+    """How the kernel guesses a w_r bin before settling it on the exact edges of its row.
+
+    Returns (mode, wpar, wtable, shift).  Mode 0 when every row is uniform: wpar[k] = (w0, 1/dw).
+    Otherwise mode 1, a lookup table on the bits of |w_r|: the top bits of a positive float64
+    (exponent, then the leading ``s`` mantissa bits) index cells 2^−s wide in log2 |w_r|, with s
+    chosen so that a cell is narrower than the narrowest bin in relative terms; wtable[k, q]
+    holds the bin of the cell's smallest |w_r| (column 0: w_r > 0; column 1: w_r < 0, the bin
+    of the most negative end), so the kernel's correction moves at most about one bin; wpar[k, 0]
+    is the bit index of the row's first cell.  Mode 2 (binary search) when a table would need
+    more than ``_W_TABLE_MAX`` cells per row."""
+    nr, nw = wr_edges.shape[0], wr_edges.shape[1] - 1
+    # row by row: temporaries of one row at a time
+    uniform, rel, smallest, largest = True, np.inf, np.empty(nr), np.empty(nr)
+    for k, row in enumerate(wr_edges):
+        dw = np.diff(row)
+        uniform = uniform and bool(np.allclose(dw, dw[0], rtol=1e-12, atol=0.0))
+        rel = min(rel, float(np.min(dw / np.maximum(np.abs(row[1:]), np.abs(row[:-1])))))
+        mag = np.abs(row)
+        smallest[k] = mag[mag > 0].min() if np.any(mag > 0) else 1.0
+        largest[k] = mag.max()
+    if uniform:
+        lo, hi = wr_edges[:, 0], wr_edges[:, -1]
+        return 0, np.ascontiguousarray(np.stack([lo, nw / (hi - lo)], axis=1)), \
+            np.zeros((nr, 1, 2), np.int32), 0
+    sub = int(min(10, max(1, math.ceil(math.log2(1.0 / rel)) + 1)))
+    shift = 52 - sub
+    q0 = np.maximum(0.5 * smallest, 1e-300).view(np.int64) >> shift
+    nq = int(np.max((largest.view(np.int64) >> shift) + 1 - q0)) + 1
+    if nq > _W_TABLE_MAX:
+        return 2, np.zeros((nr, 2)), np.zeros((nr, 1, 2), np.int32), 0
+    table = np.empty((nr, nq, 2), np.int32)
+    for k in range(nr):
+        x = ((q0[k] + np.arange(nq + 1)) << shift).view(np.float64)  # cell q: [x_q, x_q+1)
+        table[k, :, 0] = np.searchsorted(wr_edges[k], x[:-1], side="right") - 1
+        table[k, :, 1] = np.searchsorted(wr_edges[k], -x[1:], side="right") - 1
+    np.clip(table, 0, nw - 1, out=table)
+    wpar = np.stack([q0.astype(np.float64), np.zeros(nr)], axis=1)
+    return 1, wpar, table, shift
+
+
 def _check_edges(r_edges, wr_edges, box_length):
+    """Validated float64 edges; ``wr_edges`` as one row per separation bin (a 1-D array is the
+    same row for every bin)."""
     r = np.ascontiguousarray(r_edges, dtype=np.float64)
-    w = np.ascontiguousarray(wr_edges, dtype=np.float64)
+    w = np.asarray(wr_edges, dtype=np.float64)
     if not (box_length > 0 and np.isfinite(box_length)):
         raise ValueError(f"box length must be positive, got {box_length}")
     if r.ndim != 1 or r.size < 2 or not np.all(np.isfinite(r)) or np.any(np.diff(r) <= 0):
@@ -636,9 +778,20 @@ def _check_edges(r_edges, wr_edges, box_length):
     if r[0] < 0.0 or r[-1] >= 0.5 * box_length:
         raise ValueError(f"r_edges must satisfy 0 <= r_edges[0] and r_edges[-1] < L/2 = "
                          f"{0.5 * box_length}")
-    if w.ndim != 1 or w.size < 2 or not np.all(np.isfinite(w)) or np.any(np.diff(w) <= 0):
-        raise ValueError("wr_edges must be a finite, strictly increasing 1-D array (>= 2 edges)")
-    return r, w
+    return r, wr_edge_rows(w, r.size - 1)
+
+
+def wr_edge_rows(wr_edges, n_rbins: int) -> np.ndarray:
+    """``wr_edges`` as a C-contiguous float64 array with one row per separation bin (a 1-D
+    array is repeated for every bin); ValueError unless finite and strictly increasing."""
+    w = np.asarray(wr_edges, dtype=np.float64)
+    if w.ndim == 1:
+        w = np.broadcast_to(w, (max(n_rbins, 1), w.size))
+    if (w.ndim != 2 or w.shape[0] != n_rbins or w.shape[1] < 2 or not np.all(np.isfinite(w))
+            or np.any(np.diff(w, axis=1) <= 0)):
+        raise ValueError("wr_edges must be finite and strictly increasing: one row of >= 2 edges, "
+                         f"or one row per separation bin ({n_rbins} rows)")
+    return np.ascontiguousarray(w)
 
 
 def _resolve_subsets(subsample, n_a, n_b, same, rng):
@@ -680,7 +833,8 @@ def pair_statistics(pos_a, vel_a, box_length, r_edges, wr_edges, pos_b=None, vel
     pos_a, vel_a, pos_b, vel_b : (n, 3) float arrays; positions outside [0, L) are wrapped.
     box_length : L.
     r_edges : increasing separation edges, r_edges[0] >= 0, r_max = r_edges[-1] < L/2.
-    wr_edges : increasing w_r edges (see :func:`wr_edges_from_rms`).
+    wr_edges : increasing w_r edges, one row per separation bin (nbins_r × (nbins_w + 1), see
+        :func:`separation_wr_edges`) or one 1-D row for all bins (:func:`wr_edges_from_rms`).
     r_sub, subsample, rng : unbiased subsampling of large separations.  Pairs with r < r_sub use
         all particles; pairs with r >= r_sub only a uniform random subset of each set, so their
         expected counts use M(M−1)/2 (same set) or M_a M_b (cross) instead of N(N−1)/2, N_a N_b.
@@ -720,7 +874,7 @@ def pair_statistics(pos_a, vel_a, box_length, r_edges, wr_edges, pos_b=None, vel
     m_b = n_b if k_sub == nr else (m_a if same else int(idx_b.size))
 
     counts = np.zeros(nr, dtype=np.int64)
-    wr_hist = np.zeros((nr, wr_edges.size - 1), dtype=np.int64)
+    wr_hist = np.zeros((nr, wr_edges.shape[1] - 1), dtype=np.int64)
     under = np.zeros(nr, dtype=np.int64)
     over = np.zeros(nr, dtype=np.int64)
     sums = np.zeros((_N_SUMS, nr), dtype=np.float64)
@@ -730,14 +884,15 @@ def pair_statistics(pos_a, vel_a, box_length, r_edges, wr_edges, pos_b=None, vel
 
     if k_sub > 0:
         fill(slice(0, k_sub), _histograms(pos_a, vel_a, pos_b, vel_b, box_length,
-                                          r_edges[:k_sub + 1], wr_edges, ncell, nchunks))
+                                          r_edges[:k_sub + 1], wr_edges[:k_sub], ncell, nchunks))
     if k_sub < nr:
         pb = vb = None
         if not same:
             pb, vb = pos_b[idx_b], vel_b[idx_b]
         far_ncell = None if ncell is None else min(ncell, cell_count(box_length, r_edges[-1]))
         fill(slice(k_sub, nr), _histograms(pos_a[idx_a], vel_a[idx_a], pb, vb, box_length,
-                                           r_edges[k_sub:], wr_edges, far_ncell, nchunks))
+                                           r_edges[k_sub:], wr_edges[k_sub:], far_ncell,
+                                           nchunks))
 
     subsampled = np.arange(nr) >= k_sub
     full = expected_pair_counts(r_edges, box_length, n_a, None if same else n_b)

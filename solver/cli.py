@@ -115,6 +115,8 @@ def _add_report(sp):
     sp.add_argument("runs", nargs="+", metavar="RUN_DIR", help="run folders; the first is the reference")
     sp.add_argument("--out", default=None, help="folder for index.html, the PNGs and the CSV files "
                     "(default: RUN_DIR/report for one run, else a folder report/ beside the runs)")
+    sp.add_argument("--separation", type=float, default=1.0, metavar="R_ETA",
+                    help="r/eta at which g and the collision kernel are drawn against St (default 1)")
 
 
 def _add_estimate(sp):
@@ -297,7 +299,7 @@ def cmd_sweep(args, comm=None):
 def cmd_report(args, comm=None):
     from eddybox.solver.study.report import default_report_folder, write_report
 
-    index = write_report(args.runs, args.out or default_report_folder(args.runs))
+    index = write_report(args.runs, args.out or default_report_folder(args.runs), args.separation)
     print(f"report written to {index}")
     return EXIT_DONE
 

@@ -142,6 +142,30 @@ class Num(Field):
         return s
 
 
+class NumOrWord(Num):
+    """A number as `Num`, or one of a few words (`auto`)."""
+
+    def __init__(self, default=None, doc="", units="", words=("auto",), **kw):
+        super().__init__(default, doc, units, **kw)
+        self.words = tuple(words)
+
+    def allowed(self, full=False):
+        base = super().allowed(full).replace(", or null", "")
+        return (f"{base}, or " + " or ".join(repr(w) for w in self.words)
+                + (", or null" if self.none_ok else ""))
+
+    def _check(self, key, v):
+        if isinstance(v, str) and v.strip() in self.words:
+            return v.strip()
+        if isinstance(v, str) and not re.fullmatch(r"\s*[+-]?[\d.]+([eE][+-]?\d+)?\s*", v):
+            raise ConfigError(f"{key}: expected {self.allowed()}, got {v!r}"
+                              f"{suggest(v, self.words)}")
+        return super()._check(key, v)
+
+    def _schema(self):
+        return {"anyOf": [super()._schema(), {"enum": list(self.words)}]}
+
+
 class Text(Field):
     def allowed(self):
         return "a non-empty string" + (", or null" if self.none_ok else "")

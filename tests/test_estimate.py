@@ -1,6 +1,7 @@
 """`eddybox estimate`: memory equals the solver's own array inventory; the time model fits."""
 import math
 
+import numpy as np
 import pytest
 import yaml
 
@@ -37,6 +38,12 @@ def test_pair_histogram_memory_bounds_what_a_sample_allocates(config_factory):
                          stats={"fluid": {"every": None}, "spectra": {"every": None},
                                 "pairs": {"every": 0.1, "r_max": 1.0, "units": "box", "bins": 100,
                                           "wr_bins": 1001, "cross": True}})
+    # compile the pair kernel outside the trace (with a cold numba cache the compiler's own
+    # allocations would be traced)
+    from eddybox.particles.pairs import pair_statistics, separation_wr_edges
+
+    x = np.random.default_rng(0).random((50, 3))
+    pair_statistics(x, x, 1.0, np.geomspace(0.1, 0.4, 4), separation_wr_edges([0.1, 0.2, 0.3], 2.0, 11))
     sim = Simulation(cfg, overwrite=True, quiet=True)
     try:
         hook = next(h for h in sim.hooks if h.name == "pairs")

@@ -1,7 +1,9 @@
-"""Pair-statistics kernel (particles/pairs.py) and the pairs.h5 reader (particles/pairs_reader.py).
+"""Pair-statistics kernel (particles/pairs.py) and the pairs.h5 reader (solver/study/readers.py).
 
-Outside references: scipy.spatial.cKDTree pair counts, brute-force numpy over all pairs, the
-ideal-gas pair density, rigid-body kinematics, scipy.stats (sem, norm).
+Outside references: scipy.spatial.cKDTree pair counts, brute-force numpy over all pairs
+(numpy.searchsorted on every row of w_r edges), the ideal-gas pair density, rigid-body
+kinematics, scipy.stats (sem, norm), the dissipation-range and inertial-range limits of the
+longitudinal structure function (Pope 2000).
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ from scipy import stats
 from scipy.spatial import cKDTree
 
 from eddybox.particles.pairs import (
+    _wr_guess,
     bin_centres,
     cell_count,
     collision_kernel,
@@ -25,7 +28,11 @@ from eddybox.particles.pairs import (
     expected_pair_counts,
     pair_statistics,
     pairs_record,
+    separation_wr_edges,
     shell_volumes,
+    sinh_wr_edges,
+    tracer_wr_rms,
+    wr_edge_rows,
     wr_edges_from_rms,
 )
 from eddybox.solver.study import readers as pairs_reader
@@ -112,16 +119,21 @@ def _brute_force(pos_a, vel_a, box, r_edges, wr_edges, pos_b=None, vel_b=None):
     keep = (r >= r_edges[0]) & (r < r_edges[-1])
     dx, r, dv = dx[keep], r[keep], (vb - va)[keep]
     w = np.sum(dv * dx, axis=1) / r
-    nr, nw = len(r_edges) - 1, len(wr_edges) - 1
+    nr = len(r_edges) - 1
+    rows = wr_edge_rows(wr_edges, nr)  # one row of w_r edges per separation bin
+    nw = rows.shape[1] - 1
     k = np.searchsorted(r_edges, r, side="right") - 1
-    m = np.clip(np.searchsorted(wr_edges, w, side="right") - 1, 0, nw - 1)
+    m = np.zeros(k.size, dtype=np.int64)
+    for b in range(nr):
+        sel = k == b
+        m[sel] = np.clip(np.searchsorted(rows[b], w[sel], side="right") - 1, 0, nw - 1)
     hist = np.zeros((nr, nw), dtype=np.int64)
     np.add.at(hist, (k, m), 1)
     per_bin = lambda x: np.bincount(k, x, nr)  # noqa: E731
     return {
         "counts": np.bincount(k, minlength=nr), "hist": hist,
-        "under": np.bincount(k[w < wr_edges[0]], minlength=nr),
-        "over": np.bincount(k[w >= wr_edges[-1]], minlength=nr),
+        "under": np.bincount(k[w < rows[k, 0]], minlength=nr),
+        "over": np.bincount(k[w >= rows[k, -1]], minlength=nr),
         "sum_wr": per_bin(w), "sum_wr2": per_bin(w * w), "sum_abs": per_bin(np.abs(w)),
         "sum_inward": per_bin(np.maximum(-w, 0.0)),
         "sum_trans": per_bin(0.5 * (np.sum(dv * dv, axis=1) - w * w)),
@@ -178,17 +190,36 @@ def test_ideal_gas_rdf_is_one():
 # ----------------------------------------------------------------------------- velocities
 
 
-@pytest.mark.parametrize("wr_kind", ["uniform", "nonuniform"])
+def _irregular_rows(rng, nr):
+    """Rows too irregular for a lookup table (a bin 1e-7 wide at 1e-9, edges up to 10): the
+    kernel's binary search."""
+    rows = []
+    for _ in range(nr):
+        neg, pos = -np.sort(rng.uniform(0.01, 3.0, 7))[::-1], np.sort(rng.uniform(0.01, 3.0, 7))
+        rows.append(np.concatenate([[-10.0], neg, [1e-9, 1e-9 + 1e-16], pos, [10.0]]))
+    return np.array(rows)
+
+
+@pytest.mark.parametrize("wr_kind", ["uniform", "nonuniform", "rows-uniform", "rows-sinh",
+                                     "rows-irregular"])
 def test_wr_against_brute_force_abc_flow(wr_kind):
     rng = np.random.default_rng(3)
     box = 2.0 * np.pi
     pos = np.vstack([rng.random((500, 3)) * box, _face_and_corner_points(box, rng)])
     vel = _abc_velocity(pos)  # frozen analytic field evaluated at the particles
     r_edges = np.linspace(0.2, 3.0, 15)
+    modes = {"uniform": 0, "nonuniform": 1, "rows-uniform": 0, "rows-sinh": 1, "rows-irregular": 2}
     if wr_kind == "uniform":
         wr_edges = wr_edges_from_rms(0.6, 31, span=1.5)  # narrow: exercises under/overflow
-    else:
+    elif wr_kind == "nonuniform":
         wr_edges = np.concatenate([-np.geomspace(3.0, 0.01, 12), np.geomspace(0.01, 3.0, 12)])
+    elif wr_kind == "rows-uniform":  # a different uniform row per separation bin
+        wr_edges = np.array([wr_edges_from_rms(0.1 + 0.05 * k, 31, span=1.5) for k in range(14)])
+    elif wr_kind == "rows-sinh":  # the rows a run uses, cores growing with r, ends at +-1.5
+        wr_edges = separation_wr_edges(0.02 * bin_centres(r_edges), 1.5, 41)
+    else:
+        wr_edges = _irregular_rows(rng, 14)
+    assert _wr_guess(wr_edge_rows(wr_edges, 14))[0] == modes[wr_kind]
     split = 260
     # reference: brute force over all pairs in numpy (no cells)
     cases = [
@@ -207,7 +238,7 @@ def test_wr_against_brute_force_abc_flow(wr_kind):
             for name in ("sum_wr", "sum_wr2", "sum_abs", "sum_inward", "sum_trans"):
                 np.testing.assert_allclose(getattr(s, name), ref[name], rtol=1e-12,
                                            atol=1e-12 * ref["scale"].max(), err_msg=name)
-    if wr_kind == "uniform":
+    if wr_kind in ("uniform", "rows-uniform", "rows-sinh"):
         assert ref["under"].sum() > 0 and ref["over"].sum() > 0
 
 
@@ -399,6 +430,38 @@ def test_input_checks_and_combine():
     np.testing.assert_array_equal(shifted.counts, a.counts)
 
 
+# ----------------------------------------------------------------------------- w_r rows
+
+
+def test_sinh_rows_and_predicted_tracer_scale():
+    # edges uniform in asinh(w/a): symmetric, ends at +-w_max, one bin centred on 0, bins
+    # a du wide near 0 and a fixed fraction du of |w| far out (the definition)
+    e = sinh_wr_edges(0.1, 50.0, 101)
+    du = 2 * np.arcsinh(50.0 / 0.1) / 101
+    assert e[0] == -50.0 and e[-1] == 50.0 and e.size == 102
+    np.testing.assert_allclose(e, -e[::-1], rtol=0, atol=1e-14)
+    np.testing.assert_allclose(np.diff(np.arcsinh(e / 0.1)), du, rtol=1e-9)
+    assert np.isclose(e[50] + e[51], 0.0, atol=1e-15)
+    np.testing.assert_allclose(np.diff(e)[50], 2 * 0.1 * np.sinh(du / 2), rtol=1e-12)
+    np.testing.assert_allclose(np.diff(e)[-1] / 50.0, 1 - np.exp(-du), rtol=1e-3)
+    rows = separation_wr_edges([0.01, 0.1, 1.0], 8.0, 21)
+    assert rows.shape == (3, 22) and np.all(rows[:, -1] == 8.0)
+    with pytest.raises(ValueError):
+        sinh_wr_edges(1.0, 1.0, 21)  # core must be below the far end
+    # predicted rms of w_r for tracers: r sqrt(eps/(15 nu)) as r -> 0, since
+    # <(du/dx)^2> = eps/(15 nu) (Pope 2000, eq. 6.73; from memory); C2^(1/2) (eps r)^(1/3) in
+    # the inertial range (Kolmogorov 1941, C2 = 2.0, Pope 2000 sec. 6.2; from memory); sqrt(2) u'
+    # for uncorrelated velocities at large r (definition)
+    eps, nu, u = 0.1, 1e-4, 1.0
+    eta = (nu**3 / eps) ** 0.25
+    np.testing.assert_allclose(tracer_wr_rms(1e-3 * eta, eps, nu, u), 1e-3 * eta * np.sqrt(eps / (15 * nu)),
+                               rtol=1e-4)
+    r = 300 * eta  # well inside the inertial range of this made-up flow, D_LL << 2u'^2
+    np.testing.assert_allclose(tracer_wr_rms(r, 1e-3 * eps, nu * 1e-3, 1e3),
+                               np.sqrt(2.0 * (1e-3 * eps * r) ** (2 / 3)), rtol=0.05)
+    np.testing.assert_allclose(tracer_wr_rms(1e6, eps, nu, u), np.sqrt(2) * u, rtol=1e-3)
+
+
 # ----------------------------------------------------------------------------- reader
 
 
@@ -409,7 +472,8 @@ def _write_pairs_h5(path, group, r_edges, wr_edges, times, records, with_tails=T
         g["r_edges"] = r_edges
         g["wr_edges"] = wr_edges
         g["time"] = np.asarray(times)
-        names = ["counts", "rdf", "wr_hist", "wr_mean", "wr_sq", "wr_abs", "wr_inward", "kernel"]
+        names = ["counts", "expected", "rdf", "wr_hist", "wr_mean", "wr_sq", "wr_abs",
+                 "wr_inward", "kernel"]
         if with_tails:
             names += ["wr_under", "wr_over"]
         for name in names:
@@ -428,7 +492,8 @@ def _gaussian_records(rng, r_edges, wr_edges, sigmas, n_samples, n_per_bin):
         hist = np.stack([np.bincount(row, minlength=nw) for row in m])
         rdf = 1.0 + 0.05 * rng.standard_normal(len(sigmas))
         records.append({
-            "counts": np.full(len(sigmas), n_per_bin), "rdf": rdf, "wr_hist": hist,
+            "counts": np.full(len(sigmas), n_per_bin), "expected": n_per_bin / rdf, "rdf": rdf,
+            "wr_hist": hist,
             "wr_mean": w.mean(axis=1), "wr_sq": (w * w).mean(axis=1),
             "wr_abs": np.abs(w).mean(axis=1), "wr_inward": np.maximum(-w, 0).mean(axis=1),
             "kernel": collision_kernel(r_edges, rdf, np.abs(w).mean(axis=1)),
@@ -450,10 +515,16 @@ def test_reader_averages_and_pdf(tmp_path):
 
     avg, pdfs = pairs_reader.read_pairs(path, "heavy__heavy", separations=[0.07, 0.9],
                                         t_min=0.5)
-    rdf = np.stack([r["rdf"] for r in records])[1:]
-    assert avg.n_samples == 5
-    np.testing.assert_allclose(avg.rdf, rdf.mean(axis=0), rtol=1e-14)
-    np.testing.assert_allclose(avg.rdf_err, stats.sem(rdf, axis=0), rtol=1e-12)  # scipy.stats
+    counts = np.stack([r["counts"] for r in records])[1:].astype(float)
+    expected = np.stack([r["expected"] for r in records])[1:]
+    assert avg.n_samples == 5 and avg.window.method == "start"
+    # pooled: g = sum(counts) / sum(expected), the ratio estimator
+    g = counts.sum(axis=0) / expected.sum(axis=0)
+    np.testing.assert_allclose(avg.rdf, g, rtol=1e-14)
+    # its standard error by the delta method, z_i = (c_i - g E_i) / mean(E), from scipy.stats.sem
+    # (5 samples: blocking stays at level 0, where it is the plain standard error)
+    z = (counts - g * expected) / expected.mean(axis=0)
+    np.testing.assert_allclose(avg.rdf_err, stats.sem(z, axis=0), rtol=1e-10)
     # ⟨w_r²⟩ of a Gaussian is σ² (handbook), and ⟨|w_r|⟩ = σ√(2/π)
     np.testing.assert_allclose(avg.wr_rms, sigmas, rtol=0.01)
     np.testing.assert_allclose(avg.wr_abs, sigmas * np.sqrt(2 / np.pi), rtol=0.01)
@@ -471,6 +542,7 @@ def test_reader_averages_and_pdf(tmp_path):
         area = np.sum(p.pdf * np.diff(p.x_edges))
         assert abs(area - (1.0 - p.tail_fraction)) < 1e-12
     assert far.tail_fraction > 0.2  # ±0.85 is about ±1.06 σ of the widest bin
+    assert abs(near.skewness) < 0.05 and abs(near.flatness - 3.0) < 0.1  # Gaussian: 0 and 3
 
 
 def test_reader_truncates_partial_sample_and_roundtrips_kernel_output(tmp_path):
@@ -485,10 +557,13 @@ def test_reader_truncates_partial_sample_and_roundtrips_kernel_output(tmp_path):
     _write_pairs_h5(path, "a__b", r_edges, wr_edges, [0.0, 1.0, 2.0, 3.0], records)
     series = pairs_reader.read_pair_group(path, "a__b")
     assert series.n_samples == 3
-    avg = pairs_reader.time_average(series)
+    avg = pairs_reader.time_average(series, t_min=0.0)
     pooled = combine_samples(samples)
-    np.testing.assert_allclose(avg.rdf, pooled.rdf, rtol=1e-12)  # equal sample sizes
+    np.testing.assert_allclose(avg.rdf, pooled.rdf, rtol=1e-12)  # both ratios of sums
+    means = pairs_record(pooled)
+    np.testing.assert_allclose(avg.wr_sq, means["wr_sq"], rtol=1e-12)
+    np.testing.assert_allclose(avg.kernel, means["kernel"], rtol=1e-12)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        pdf = pairs_reader.wr_pdf(series, 0.23)
+        pdf = pairs_reader.wr_pdf(series, 0.23, t_min=0.0)
     assert pdf.r_bin == 4 and pdf.tail_fraction == 0.0

@@ -234,15 +234,24 @@ def _direct(run):
     err = cv * math.hypot(analysis.block_average(d2).stderr / (2 * d2.mean()), inj.stderr / m)
     values = {k: (v.mean, v.stderr) for k, v in got.items()}
     values["injection_cv"] = (cv, err)
+    # pairs: ratios of sums over the group's averaging window (the window rule is tested in
+    # test_pair_estimators), errors by eddybox.solver.estimators.pairs.ratio_estimate
+    from eddybox.solver.estimators.pairs import ratio_estimate
+    from eddybox.solver.study.readers import averaging_window, read_pair_group
+
+    window = averaging_window(read_pair_group(run / "pairs.h5", "drops__drops"))
     with h5py.File(run / "pairs.h5", "r") as f:
         g = f["pairs/drops__drops"]
-        tp, rdf = g["time"][...], g["rdf"][...]
-        kernel = np.where(g["counts"][...] == 0, 0.0, g["kernel"][...])  # no pairs: g = 0, K = 0
+        keep = window.mask(g["time"][...])
+        c, e = g["counts"][...][keep, 0].astype(float), g["expected"][...][keep, 0]
+        r = g["r_centres"][...][keep, 0]
+        s_abs = np.where(c > 0, g["wr_abs"][...][keep, 0] * c, 0.0)
         edges = g["r_edges"][...]
-    gs = analysis.stationary_summary_bins(tp, rdf)
-    ks = analysis.stationary_summary_bins(tp, kernel)
-    values["drops__drops/g_small"] = (gs.mean[0], gs.stderr[0])
-    values["drops__drops/kernel_small"] = (ks.mean[0], ks.stderr[0])
+    gs = ratio_estimate(c, e)
+    ks = ratio_estimate(2 * np.pi * r**2 * s_abs, e)  # K = 2 pi r^2 sum|w_r| / sum expected
+    assert gs.value == pytest.approx(c.sum() / e.sum(), rel=1e-12)
+    values["drops__drops/g_small"] = (gs.value, gs.stderr)
+    values["drops__drops/kernel_small"] = (ks.value, ks.stderr)
     values["drops__drops/r_small_eta"] = (math.sqrt(edges[0] * edges[1]), None)  # log-bin centre
     return values
 
@@ -276,15 +285,19 @@ def test_differences_flag_exactly_the_2_sigma_ones(report):
 def test_wr_pdf_is_normalised(swept):
     # a PDF integrates to one (definition); pairs beyond the stored w_r range are left out,
     # so the integral is 1 minus the fraction outside
-    from eddybox.solver.study.readers import read_pair_group
-    from eddybox.solver.study.report import pdf_samples
+    from eddybox.solver.study.readers import read_pair_group, wr_pdf
 
     series = read_pair_group(swept / NAMES[0] / "pairs.h5", "drops__drops")
     k = series.counts.shape[1] - 1
-    _, pdf, sigma, x_edges = pdf_samples(series, k)
-    outside = (series.wr_under[:, k] + series.wr_over[:, k]) / series.counts[:, k]
-    np.testing.assert_allclose(pdf @ np.diff(x_edges), 1.0 - outside, rtol=1e-12)
-    assert sigma == pytest.approx(math.sqrt(series.wr_sq[:, k].mean()), rel=1e-12)
+    pdf = wr_pdf(series, 1e9)  # the largest separation bin
+    assert pdf.r_bin == k
+    keep = pdf.window.mask(series.time)
+    c = series.counts[keep, k]
+    outside = (series.wr_under[keep, k] + series.wr_over[keep, k]).sum() / c.sum()
+    assert pdf.pdf @ np.diff(pdf.x_edges) == pytest.approx(1.0 - outside, rel=1e-12)
+    # sigma = sqrt(sum w_r^2 / sum counts) over the window (pooled)
+    assert pdf.rms == pytest.approx(math.sqrt((series.wr_sq[keep, k] * c).sum() / c.sum()),
+                                    rel=1e-12)
 
 
 def test_report_refuses_a_folder_that_is_not_a_run(tmp_path, swept, capsys):

@@ -31,6 +31,7 @@ from eddybox.solver.fields import (
     ListOf,
     Name,
     Num,
+    NumOrWord,
     Optional,
     Section,
     Text,
@@ -238,9 +239,16 @@ class PairStatsConfig(Section):
     r_min = Num(None, "smallest edge for log bins (default r_max/100)", "η or L", lo=0.0,
                 lo_open=True, hi=1e6)
     units = Choice("eta", ("eta", "box"), "units of r_max and r_min: Kolmogorov lengths at each "
-                   "sample, or box units")
-    wr_bins = Num(101, "bins of the w_r histogram (odd: one bin centred on w_r = 0)", "1", lo=3,
-                  hi=100001, integer=True)
+                   "sample (r_max is clipped to 0.45 L at the release if it reaches further), or "
+                   "box units")
+    wr_bins = Num(101, "bins of the w_r histogram of each separation bin (odd: one bin centred "
+                  "on w_r = 0); sinh-spaced per separation bin, fine near the rms of w_r that "
+                  "tracers have there, geometric out to ±8·√2 u′", "1", lo=3, hi=100001,
+                  integer=True)
+    start = NumOrWord("auto", "start of the averaging window of running/ and of the default "
+                      "averages (report, inspect, readers): a time, or auto: the end of the "
+                      "transient after the release, by MSER-5 on g at small r, no earlier than "
+                      "release + 3 τ_p; earlier samples are still written", "T", lo=0.0)
     cross = Flag(False, "also pairs across every two sets")
     subsample_above = Num(None, "separation above which a particle subsample is used", "η or L",
                           lo=0.0, lo_open=True, hi=1e6)
@@ -253,6 +261,19 @@ class PairStatsConfig(Section):
                               f"w_r = 0), got {self.wr_bins}")
         if self.r_min is not None and self.r_min >= self.r_max:
             raise ConfigError("stats.pairs.r_min: must be below stats.pairs.r_max")
+        if self.subsample_above is not None and self.subsample_above >= self.r_max:
+            raise ConfigError(f"stats.pairs.subsample_above: {self.subsample_above:g} is not below "
+                              f"stats.pairs.r_max {self.r_max:g}; no bin would be subsampled")
+
+    def summary(self):
+        if self.every is None:
+            return "pairs off"
+        lo = self.r_min if self.r_min is not None else self.r_max / 100.0
+        r = (f"{self.bins} {self.spacing} bins {lo:g}..{self.r_max:g}"
+             + (" eta" if self.units == "eta" else " L"))
+        start = "window auto" if self.start == "auto" else f"window t>={self.start:g}"
+        return (f"pairs every {self.every:g}: {r}, {self.wr_bins} w_r bins per r bin, {start}"
+                + (", cross" if self.cross else ""))
 
 
 class ParticleStatsConfig(Section):
@@ -343,6 +364,17 @@ def _cross_checks(c: RunConfig):
         if pr.units == "box" and pr.r_max >= 0.5 * c.grid.length:
             raise ConfigError(f"stats.pairs.r_max: {pr.r_max} must be below half the box "
                               f"({0.5 * c.grid.length:.6g}) with units: box")
+        if pr.start != "auto" and pr.start >= c.time.end:
+            raise ConfigError(f"stats.pairs.start: {pr.start:g} is not before time.end "
+                              f"{c.time.end:g}; no sample would be averaged")
+        # a flow at rest has no dissipation, hence no eta: for ever, or at a release at t = 0
+        still = c.fluid.initial.kind == "rest" and (
+            c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
+        if pr.units == "eta" and c.fluid.initial.kind == "rest" and (still or p.release == 0.0):
+            why = "stays at rest" if still else "is at rest at the release (t = 0)"
+            raise ConfigError(f"stats.pairs.units: 'eta' needs the Kolmogorov length, but the "
+                              f"flow {why} and has no dissipation; use units: box, or release "
+                              "the particles later (particles.release)")
 
 
 # --- the Config object --------------------------------------------------------------------------

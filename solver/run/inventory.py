@@ -118,8 +118,10 @@ def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
             groups = sets + (sets * (sets - 1) // 2 if pr.cross else 0)
             h = pr.bins * pr.wr_bins * 8
             # the kernel's chunks, their sum and the sample's histogram; per group the running
-            # sum, the record and (first sample) the zeros the file is created with
-            tmp["pair_histograms"] = h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
+            # sum, the record, (first sample) the zeros the file is created with, and its rows
+            # of w_r edges (one per separation bin)
+            tmp["pair_histograms"] = (h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
+                                      + groups * pr.bins * (pr.wr_bins + 1) * 8)
     return tmp
 
 

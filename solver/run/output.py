@@ -36,11 +36,13 @@ class Column:
 
 
 class Fixed:
-    """A dataset written once at creation (bin edges, wavenumbers, ...)."""
+    """A dataset written once at creation (bin edges, wavenumbers, ...); `scale` makes it a
+    dimension scale of that name, `dims` names the scale datasets of its axes."""
 
-    def __init__(self, path, data, units, description, scale=None):
+    def __init__(self, path, data, units, description, scale=None, dims=None):
         self.path, self.data, self.units, self.description = path, np.asarray(data), units, description
         self.scale = scale
+        self.dims = dims
 
 
 #: h5py objects of files whose writes failed for good. They are never closed: closing an HDF5
@@ -159,7 +161,7 @@ class SampleFile:
             made.append(g)
             for k, v in attrs.items():
                 g.attrs[k] = v
-        for c in self.columns.values():
+        for c in [*self.columns.values(), *self.fixed]:
             if c.dims:
                 for axis, scale in enumerate(c.dims):
                     if scale and scale != c.path:

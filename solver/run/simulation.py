@@ -167,7 +167,8 @@ class Simulation:
                                            st.fluid.every if series_every is None else series_every))
             if st.pairs.every is not None:
                 self.hooks.append(PairHook(st.pairs, os.path.join(self.out, "pairs.h5"),
-                                           [s.name for s in c.particles.sets], c.grid.length, c.seed))
+                                           [s.name for s in c.particles.sets], c.grid.length, c.seed,
+                                           scales.predicted(config)))
         every = c.checkpoint.every
         self.checkpoint_schedule = Schedule(every, start=every or 0.0)
 

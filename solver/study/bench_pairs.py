@@ -6,6 +6,14 @@ run (k_max η ≈ 1.5 with k_max = n_grid/3, the 2/3-rule cut-off in a 2π box: 
 0.0352 for 128³).  The reference pipeline is scipy.spatial.cKDTree(boxsize=L).query_pairs(r_max,
 output_type='ndarray'), then numpy minimum-image separations, w_r, np.histogram (counts),
 np.histogram2d (w_r histogram) and np.bincount (the per-bin sums).
+
+The w_r bins are those a run uses: one sinh-spaced row per separation bin
+(particles.pairs.separation_wr_edges, core at the tracer rms of w_r predicted for a flow with
+eps = nu = 1 in these units, far end at 8 sqrt(2) u').  ``pairs_per_second_uniform_wr`` times the
+same call with one uniform row for all separation bins (the layout before rows per separation
+bin), interleaved with it.  ``pairs_sinh_over_uniform_wr``, the speed with the rows over the
+speed with one uniform row, is measured side by side in CPU time on one thread (best of 5,
+interleaved), which other processes on shared cores disturb far less than wall time.
 """
 
 from __future__ import annotations
@@ -17,7 +25,15 @@ import numba
 import numpy as np
 from scipy.spatial import cKDTree
 
-from eddybox.particles.pairs import cell_count, pair_statistics, wr_edges_from_rms
+from eddybox.particles.pairs import (
+    bin_centres,
+    cell_count,
+    pair_statistics,
+    separation_wr_edges,
+    tracer_wr_rms,
+    wr_edges_from_rms,
+    wr_edge_rows,
+)
 
 __all__ = ["bench_pairs", "scipy_pair_pipeline"]
 
@@ -40,10 +56,12 @@ def scipy_pair_pipeline(pos, vel, box_length, r_edges, wr_edges):
     dv = vel[j] - vel[i]
     w = np.einsum("ij,ij->i", dv, dx) / r
     counts, _ = np.histogram(r, r_edges)
-    hist, _, _ = np.histogram2d(r, np.clip(w, wr_edges[0], wr_edges[-1]), [r_edges, wr_edges])
     k = np.searchsorted(r_edges, r, side="right") - 1
     ok = (k >= 0) & (k < r_edges.size - 1)
     nr = r_edges.size - 1
+    rows = wr_edge_rows(wr_edges, nr)
+    hist = np.stack([np.histogram(np.clip(w[k == b], row[0], row[-1]), row)[0]
+                     for b, row in enumerate(rows)])
     sums = [np.bincount(k[ok], x[ok], nr) for x in
             (w, w * w, np.abs(w), np.maximum(-w, 0.0),
              0.5 * (np.einsum("ij,ij->i", dv, dv) - w * w))]
@@ -92,14 +110,40 @@ def bench_pairs(n_particles: int = 10**5, n_grid: int = 128, r_max_eta: float = 
     pos = rng.random((n_particles, 3)) * box
     vel = rng.standard_normal((n_particles, 3))
     r_edges = np.geomspace(r_max / 10**_LOG_DECADES, r_max, _R_BINS + 1)
-    wr_edges = wr_edges_from_rms(1.0, _WR_BINS)
+    # the rows a run would use for Gaussian velocities of rms 1 (u' = 1, eps = nu = 1 here)
+    wr_edges = separation_wr_edges(tracer_wr_rms(bin_centres(r_edges) / eta, 1.0, 1.0, 1.0),
+                                   8.0 * np.sqrt(2.0), _WR_BINS)
+    uniform = wr_edges_from_rms(1.0, _WR_BINS)
 
-    def ours(edges=r_edges):
-        return pair_statistics(pos, vel, box, edges, wr_edges)
+    def ours():
+        return pair_statistics(pos, vel, box, r_edges, wr_edges)
 
-    ours(r_edges[:3])  # compile outside the timing
-    t_ours, sample = _best_time(ours, repeats)
+    def ours_uniform():
+        return pair_statistics(pos, vel, box, r_edges, uniform)
+
+    pair_statistics(pos[:2000], vel[:2000], box, r_edges, wr_edges)  # compile outside the timing
+    pair_statistics(pos[:2000], vel[:2000], box, r_edges, uniform)
+    t_ours = t_uniform = np.inf
+    for _ in range(max(3, repeats)):  # interleaved, best of 3: both see the same machine load
+        t, sample = _best_time(ours, 1)
+        t_ours = min(t_ours, t)
+        t, _ = _best_time(ours_uniform, 1)
+        t_uniform = min(t_uniform, t)
     n_pairs = int(sample.counts.sum())
+    # the ratio of the two layouts from CPU time on one thread, interleaved, best of 5, on the
+    # first 10^5 particles: wall time on shared cores swings by more than the ratio measured
+    m_ratio = min(n_particles, 10**5)
+    threads = numba.get_num_threads()
+    cpu = {"rows": np.inf, "uniform": np.inf}
+    try:
+        numba.set_num_threads(1)
+        for _ in range(5):
+            for name, edges in (("rows", wr_edges), ("uniform", uniform)):
+                t0 = time.process_time()
+                pair_statistics(pos[:m_ratio], vel[:m_ratio], box, r_edges, edges)
+                cpu[name] = min(cpu[name], time.process_time() - t0)
+    finally:
+        numba.set_num_threads(threads)
     # the reference materialises every pair (16 bytes each for the indices alone): above
     # SCIPY_MAX_PARTICLES it would not fit in memory, so the ratio is measured side by side on
     # the first SCIPY_MAX_PARTICLES particles, with our kernel timed again on the same subset
@@ -116,7 +160,6 @@ def bench_pairs(n_particles: int = 10**5, n_grid: int = 128, r_max_eta: float = 
 
     # one-thread calibration for the projection: all pairs within r_max = 0.499 L of n_cal
     # particles (the ncell < 3 path, every pair a candidate), scaled by the number of pairs
-    threads = numba.get_num_threads()
     n_cal = min(n_particles, _N_CALIBRATION)
     r_cal = 0.499 * box
     edges_cal = np.geomspace(r_cal / 10**_LOG_DECADES, r_cal, _R_BINS + 1)
@@ -144,6 +187,8 @@ def bench_pairs(n_particles: int = 10**5, n_grid: int = 128, r_max_eta: float = 
         "scipy_particles": m,
         "scipy_seconds": t_ref,
         "pairs_per_second": n_pairs / t_ours,
+        "pairs_per_second_uniform_wr": n_pairs / t_uniform,
+        "pairs_sinh_over_uniform_wr": cpu["uniform"] / cpu["rows"],
         "scipy_pairs_per_second": int(sub.counts.sum()) / t_ref,
         "pairs_speedup_vs_scipy": t_ref / t_ours_sub,
         "pairs_peak_bytes": _peak_bytes(lambda: pair_statistics(sub_pos, sub_vel, box, r_edges, wr_edges)),

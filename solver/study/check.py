@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from eddybox.solver.run import scales
 from eddybox.solver.run.inventory import human_bytes, machine_memory, memory_needed, predicted_inventory
 
@@ -46,6 +48,9 @@ def check_lines(cfg) -> list[str]:
     plines, pwarn = particle_lines(cfg.particles, p)
     out += plines
     warnings += pwarn
+    pl, pw = _pair_lines(cfg, p)
+    out += pl
+    warnings += pw
     inv = predicted_inventory(cfg)
     total = sum(inv.values())
     n3 = cfg.grid.points ** 3
@@ -66,6 +71,30 @@ def _points_for(cfg, kmax) -> int:
 
     k0 = 2 * math.pi / cfg.grid.length
     return math.ceil(kmax / (k0 * DEALIASING[cfg.fluid.dealias].kmax_index(1)))
+
+
+def _pair_lines(cfg, p) -> tuple[list[str], list[str]]:
+    """The pair statistics' bins and window, and whether r_max fits the box: in eta units it
+    is clipped at the release when it reaches beyond R_CLIP L (a warning here when the predicted
+    eta says so; eta is only measured at the release)."""
+    pr = cfg.stats.pairs
+    if pr.every is None:
+        return [], []
+    from eddybox.particles.hooks import R_CLIP, clip_separations
+
+    lines = ["", "pair statistics:", f"  {pr.summary()}"]
+    if pr.units != "eta":
+        return lines, []
+    if "eta" not in p:
+        lines.append(f"  r_max = {pr.r_max:g} eta is checked against the box at the release, "
+                     f"where eta is measured (clipped to {R_CLIP} L if it reaches further)")
+        return lines, []
+    _, msg = clip_separations(np.array([pr.r_min or pr.r_max / 100.0, pr.r_max]), p["eta"],
+                              cfg.grid.length, pr.spacing)
+    lines.append(f"  r_max = {pr.r_max:g} eta ~ {pr.r_max * p['eta']:.4g} with the predicted "
+                 f"eta (half the box: {0.5 * cfg.grid.length:.4g})")
+    return lines, ([f"{msg} with the predicted eta = {p['eta']:.4g}; the run clips it with the "
+                    "eta measured at the release"] if msg else [])
 
 
 def print_check(cfg):

@@ -37,32 +37,41 @@ def _generic(f, lines):
 
 
 def _pairs_summary(path):
-    """Per group: samples, and per separation bin the time-averaged g(r), <w_r^2>, <|w_r|>
-    and the collision kernel with standard errors from the spread over samples
-    (eddybox.solver.study.readers)."""
-    from eddybox.solver.study.readers import (
-        list_pair_groups,
-        read_pair_group,
-        time_average,
-    )
+    """Per group: samples, the averaging window, and per separation bin the pooled g(r),
+    <w_r^2>, <|w_r|> and the collision kernel with their standard errors (delta method with
+    blocking over correlated samples; eddybox.solver.study.readers.time_average)."""
+    from eddybox.solver.study.readers import list_pair_groups, read_pair_group, time_average
 
     lines = []
     for name in list_pair_groups(path):
         series = read_pair_group(path, name)
         n = series.n_samples
+        a = series.attrs
+        st = "".join(f", St_{k} = {float(a[f'stokes_{k}']):.3g}" for k in "ab" if f"stokes_{k}" in a)
         lines.append(f"  pairs {name}: {n} samples"
-                     + (f", t = {series.time[0]:.4g} .. {series.time[-1]:.4g}" if n else ""))
+                     + (f", t = {series.time[0]:.4g} .. {series.time[-1]:.4g}" if n else "") + st)
         if not n:
             continue
-        avg = time_average(series)
+        try:
+            avg = time_average(series)
+        except ValueError as exc:
+            lines.append(f"    {exc}")
+            continue
+        lines.append(f"    averaging window: {avg.window.describe()}, {avg.n_samples} samples")
         edges = series.r_edges
-        lines.append(f"    {'r_lo':>9s} {'r_hi':>9s} {'pairs':>10s} {'g(r)':>16s} {'<w_r^2>':>11s} "
-                     f"{'<|w_r|>':>11s} {'kernel':>11s}   (r in {series.units.get('r_edges', '')})")
+        lines.append(f"    {'r_lo':>9s} {'r_hi':>9s} {'pairs':>10s} {'g(r)':>17s} "
+                     f"{'<w_r^2>':>19s} {'<|w_r|>':>19s} {'kernel':>19s}   "
+                     f"(r in {series.units.get('r_edges', '')})")
         for i in range(len(edges) - 1):
             lines.append(f"    {edges[i]:9.4g} {edges[i + 1]:9.4g} {avg.counts[i]:10d} "
-                         f"{avg.rdf[i]:8.4g}±{avg.rdf_err[i]:<7.2g} {avg.wr_sq[i]:11.4g} "
-                         f"{avg.wr_abs[i]:11.4g} {avg.kernel[i]:11.4g}")
+                         f"{_pm(avg.rdf[i], avg.rdf_err[i])} {_pm(avg.wr_sq[i], avg.wr_sq_err[i])} "
+                         f"{_pm(avg.wr_abs[i], avg.wr_abs_err[i])} "
+                         f"{_pm(avg.kernel[i], avg.kernel_err[i])}")
     return lines
+
+
+def _pm(v, e) -> str:
+    return f"{v:9.4g}±{e:<9.2g}"
 
 
 def _checkpoint_summary(path, f) -> list[str]:

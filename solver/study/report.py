@@ -27,7 +27,7 @@ import yaml
 from eddybox.solver import __version__
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.estimators import timeseries as analysis
-from eddybox.solver.study.readers import check_run_dir, open_output, read_fluid_series, read_spectra
+from eddybox.solver.study.readers import check_run_dir, read_fluid_series, read_spectra
 
 KOLMOGOROV_C = 1.5  # E(k) = C eps^(2/3) k^(-5/3) in the inertial range; Pope (2000) §6.5 (from memory)
 COLOURS = ["#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2",
@@ -54,17 +54,6 @@ class Estimate:
         return cls(s.mean, s.stderr, s.start_time, s.converged, s.note)
 
 
-@dataclass(frozen=True)
-class BinnedEstimate:
-    """Per-bin stationary means and standard errors; bins that cannot be estimated are NaN."""
-
-    mean: np.ndarray
-    stderr: np.ndarray
-    start_time: float = math.nan
-    converged: bool = False
-    note: str = ""
-
-
 def stationary(times, values) -> Estimate:
     """analysis.stationary_summary of one series, or a NaN estimate saying why not."""
     v = np.asarray(values, dtype=float)
@@ -76,24 +65,6 @@ def stationary(times, values) -> Estimate:
         return Estimate.from_summary(analysis.stationary_summary(times, v))
     except ValueError as exc:
         return Estimate.missing(str(exc))
-
-
-def stationary_bins(times, values) -> BinnedEstimate:
-    """analysis.stationary_summary_bins on the bins that are finite at every sample."""
-    v = np.asarray(values, dtype=float)
-    nan = np.full(v.shape[1:], np.nan)
-    if v.shape[0] < 2:
-        return BinnedEstimate(nan, nan.copy(), note="fewer than 2 samples")
-    cols = np.all(np.isfinite(v), axis=0)
-    if not cols.any():
-        return BinnedEstimate(nan, nan.copy(), note="no bin is finite at every sample")
-    try:
-        s = analysis.stationary_summary_bins(times, v[:, cols])
-    except ValueError as exc:
-        return BinnedEstimate(nan, nan.copy(), note=str(exc))
-    mean, err = nan.copy(), nan.copy()
-    mean[cols], err[cols] = s.mean, s.stderr
-    return BinnedEstimate(mean, err, s.start_time, s.converged and cols.all(), s.note)
 
 
 # --- the table quantities ------------------------------------------------------------------
@@ -208,90 +179,32 @@ def mean_spectrum(spectra, t_start):
     return k, e[keep].mean(axis=0), int(keep.sum())
 
 
-@dataclass
-class PdfEstimate:
-    r_eta: float
-    bin: int
-    rms: float
-    x_edges: np.ndarray
-    pdf: BinnedEstimate
+#: the w_r PDFs of the report: at 2 eta, and at the largest separation (as near L/2 as stored)
+PDF_SEPARATIONS_ETA = (2.0,)
 
 
-@dataclass
-class PairStats:
-    """Stationary pair statistics of one set pair of one run (r in Kolmogorov lengths)."""
-
-    group: str
-    r_edges_eta: np.ndarray
-    r_eta: np.ndarray
-    n_samples: int
-    rdf: BinnedEstimate
-    kernel: BinnedEstimate
-    pdfs: list
-    attrs: dict
-
-
-def pair_samples(series):
-    """Per-sample g(r) and K(r) as averaged by the report. K is NaN in a bin without pairs
-    (no <|w_r|>); there g = 0, so K = 2 pi r^2 g <|w_r|> = 0 and is counted as such."""
-    kernel = np.where(series.counts == 0, 0.0, series.kernel)
-    return np.asarray(series.rdf, float), kernel
-
-
-def pdf_samples(series, k):
-    """Per-sample PDFs of x = w_r / sigma in r-bin k: (times, pdf samples x w-bins, sigma,
-    x edges). Pairs beyond the w_r range (wr_under / wr_over) are left out of the end bins, so
-    each PDF integrates to the fraction inside the range; sigma = sqrt(<w_r^2>) of the bin
-    averaged over all samples with pairs. Samples without pairs in the bin are dropped."""
-    hist = series.wr_hist[:, k, :].astype(float)
-    if series.wr_under is not None and series.wr_over is not None:
-        hist[:, 0] -= series.wr_under[:, k]
-        hist[:, -1] -= series.wr_over[:, k]
-    total = series.counts[:, k].astype(float)
-    ok = total > 0
-    sq = series.wr_sq[ok, k]
-    sigma = float(np.sqrt(np.mean(sq))) if sq.size else math.nan
-    x_edges = series.wr_edges / sigma
-    pdf = hist[ok] / (total[ok, None] * np.diff(x_edges)[None, :])
-    return series.time[ok], pdf, sigma, x_edges
-
-
-def _nearest_log(centres, target):
-    return int(np.argmin(np.abs(np.log(centres) - math.log(max(target, 1e-300)))))
-
-
-def read_pair_stats(run_dir, eta: float, integral: float) -> list[PairStats]:
-    """Every /pairs/<a>__<b> group of RUN_DIR/pairs.h5 reduced to stationary means; the w_r
-    PDFs are taken in the bins nearest (in log r) to eta and to the integral scale, or in the
-    smallest and largest bin when those are the same bin."""
-    from eddybox.particles.pairs import bin_centres
-    from eddybox.solver.study.readers import list_pair_groups, read_pair_group
+def read_pdfs(run_dir, length) -> dict:
+    """group -> [WrPdf at 2 eta, WrPdf in the largest bin (nearest to L/2)] of RUN_DIR/pairs.h5,
+    pooled over each group's averaging window (readers.wr_pdf)."""
+    from eddybox.solver.study.readers import list_pair_groups, read_pair_group, wr_pdf
 
     path = Path(run_dir) / "pairs.h5"
     if not path.exists():
-        return []
-    out = []
+        return {}
+    out = {}
     for group in list_pair_groups(path):
         series = read_pair_group(path, group)
-        with open_output(path) as f:
-            attrs = {k: (v.decode() if isinstance(v, bytes) else v)
-                     for k, v in f["pairs"][group].attrs.items()}
-        in_eta = attrs.get("r_units", "eta") == "eta"
-        scale = 1.0 if in_eta else 1.0 / eta
-        edges = np.asarray(series.r_edges, float) * scale
-        centres = bin_centres(edges)
-        rdf, kernel = pair_samples(series)
-        small = _nearest_log(centres, 1.0)
-        large = _nearest_log(centres, integral / eta)
-        if small == large:
-            small, large = 0, centres.size - 1
-        pdfs = []
-        for k in sorted({small, large}):
-            t, pdf, sigma, x_edges = pdf_samples(series, k)
-            pdfs.append(PdfEstimate(float(centres[k]), k, sigma, x_edges, stationary_bins(t, pdf)))
-        out.append(PairStats(group, edges, centres, series.n_samples,
-                             stationary_bins(series.time, rdf), stationary_bins(series.time, kernel),
-                             pdfs, attrs))
+        if series.n_samples == 0:
+            continue
+        eta = float(np.mean(series.eta)) if series.eta is not None else math.nan
+        targets = [*PDF_SEPARATIONS_ETA, 0.5 * length / eta if eta > 0 else 1e300]
+        try:
+            pdfs = [wr_pdf(series, r, r_in_eta=True) for r in targets]
+        except ValueError:
+            continue
+        if pdfs[0].r_bin == pdfs[-1].r_bin:
+            pdfs = pdfs[:1]
+        out[group] = pdfs
     return out
 
 
@@ -303,26 +216,51 @@ class Run:
     series: dict
     estimates: dict
     spectra: object
-    pairs: list
+    pairs: object  # readers.PairTable: this run's rows of the tidy pair table
+    pdfs: dict  # group -> [readers.WrPdf]
 
 
-def load_run(run_dir, name=None) -> Run:
+def load_run(run_dir, name=None, table=None) -> Run:
+    """A run folder's fluid estimates, spectra, pair table rows (from ``table``, the tidy table
+    of readers.pair_table, or read here) and w_r PDFs."""
+    from eddybox.solver.study.readers import pair_table
+
     series = read_fluid_series(run_dir)
     path = Path(run_dir)
+    name = name or path.name
     try:
         config = yaml.safe_load((path / "config.yaml").read_text()) or {}
     except (OSError, yaml.YAMLError):
         config = {}
     est = fluid_estimates(series)
-    eta, integral = est["eta"].mean, est["integral_scale"].mean
-    if not (math.isfinite(eta) and math.isfinite(integral)):
-        eta = float(series["eta"][-1]) if series["eta"].size else math.nan
-        integral = float(series["integral_scale"][-1]) if series["integral_scale"].size else math.nan
+    if table is None:
+        table = pair_table([path], [name])
+    rows = table.select(table.columns["run"] == name) if len(table) else table
+    length = float(config.get("grid", {}).get("length", 2 * math.pi))
     try:
-        pairs = read_pair_stats(path, eta, integral) if math.isfinite(eta) else []
+        pdfs = read_pdfs(path, length)
     except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError) as exc:
         raise ConfigError(f"{path / 'pairs.h5'}: not a readable pairs file of eddybox ({exc})") from None
-    return Run(name or path.name, path, config, series, est, read_spectra(path), pairs)
+    return Run(name, path, config, series, est, read_spectra(path), rows, pdfs)
+
+
+def pair_groups(run: Run) -> list[str]:
+    """The set pairs of a run's table, in file order."""
+    t = run.pairs
+    if not len(t):
+        return []
+    names = [f"{a}__{b}" for a, b in zip(t.columns["set_a"], t.columns["set_b"])]
+    return list(dict.fromkeys(names))
+
+
+def group_rows(run: Run, group: str):
+    """The table rows of one set pair (a PairTable), or None."""
+    t = run.pairs
+    if not len(t):
+        return None
+    a, b = group.split("__", 1)
+    mask = (t.columns["set_a"] == a) & (t.columns["set_b"] == b)
+    return t.select(mask) if mask.any() else None
 
 
 def _run_names(dirs):
@@ -415,31 +353,47 @@ def plot_spectra(runs, path):
     return drawn
 
 
+def _pdf_label(pdf) -> str:
+    return f"r = {pdf.r_eta:.3g} η"
+
+
+def _draw_pdf(ax, pdf, colour, ls="-", label=None):
+    """A pooled w_r PDF with its error bars (bins with no pairs left out)."""
+    y, dy = pdf.pdf, pdf.pdf_err
+    ok = np.isfinite(y) & (y > 0)
+    dy = np.where(np.isfinite(dy), dy, 0.0)
+    ax.errorbar(pdf.x_centres[ok], y[ok], yerr=np.minimum(dy[ok], 0.999 * y[ok]), color=colour,
+                ls=ls, lw=1, marker=".", ms=3, capsize=1.5, label=label)
+
+
+def _gaussian(ax):
+    x = np.linspace(-8, 8, 321)
+    ax.plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k:", lw=1.2, label="unit Gaussian")
+
+
 def plot_pairs(runs, group, path):
+    """One set pair across runs: g(r/η), the w_r PDFs at 2η and at the largest separation,
+    and the collision kernel, each with its error bars."""
     fig = _figure(13, 4.9)
     ax_g, ax_p, ax_k = fig.subplots(1, 3)
     for i, run in enumerate(runs):
-        ps = next((p for p in run.pairs if p.group == group), None)
-        if ps is None:
+        rows = group_rows(run, group)
+        if rows is None:
             continue
         c = COLOURS[i % len(COLOURS)]
-        ax_g.errorbar(ps.r_eta, ps.rdf.mean, yerr=ps.rdf.stderr, color=c, marker="o", ms=3,
+        t = rows.columns
+        ax_g.errorbar(t["r_eta"], t["g"], yerr=t["g_err"], color=c, marker="o", ms=3,
                       capsize=2, label=run.name)
-        ax_k.errorbar(ps.r_eta, ps.kernel.mean, yerr=ps.kernel.stderr, color=c, marker="o", ms=3,
+        ax_k.errorbar(t["r_eta"], t["kernel"], yerr=t["kernel_err"], color=c, marker="o", ms=3,
                       capsize=2, label=run.name)
-        for pdf, ls in zip(ps.pdfs, ("-", "--")):
-            x = 0.5 * (pdf.x_edges[1:] + pdf.x_edges[:-1])
-            y, dy = pdf.pdf.mean, pdf.pdf.stderr
-            ok = np.isfinite(y) & (y > 0)
-            ax_p.errorbar(x[ok], y[ok], yerr=np.minimum(dy[ok], 0.999 * y[ok]), color=c, ls=ls,
-                          lw=1, marker=".", capsize=1.5,
-                          label=f"{run.name}, r = {pdf.r_eta:.3g} η ({int(ok.sum())} w$_r$ bins)")
-    x = np.linspace(-6, 6, 241)
-    ax_p.plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k:", lw=1.2, label="unit Gaussian")
+        for pdf, ls in zip(run.pdfs.get(group, []), ("-", "--")):
+            _draw_pdf(ax_p, pdf, c, ls, f"{run.name}, {_pdf_label(pdf)} "
+                                        f"(F = {pdf.flatness:.2f})")
+    _gaussian(ax_p)
     ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)", title="radial distribution function")
     ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
     ax_p.set(yscale="log", xlabel="w$_r$ / rms(w$_r$)", ylabel="PDF", title="radial relative velocity",
-             xlim=(-6, 6), ylim=(1e-4, 2))
+             xlim=(-8, 8), ylim=(1e-5, 2))
     ax_k.set(xscale="log", yscale="log", xlabel="r / η", ylabel="K(r)  [L³ T⁻¹]",
              title="collision kernel 2πr²g⟨|w$_r$|⟩")
     for ax in (ax_g, ax_p, ax_k):
@@ -452,6 +406,98 @@ def plot_pairs(runs, group, path):
     ncol = max(1, min(3, len(labels), int(1200 // (5 * longest + 60))))  # ~5 px per character
     fig.legend(handles, labels, loc="outside lower center", ncol=ncol, fontsize=8, frameon=False)
     fig.savefig(path)
+
+
+def _same_set_groups(run):
+    """(group, St, rows) of the single-set groups, by Stokes number."""
+    out = []
+    for g in pair_groups(run):
+        rows = group_rows(run, g)
+        a, b = g.split("__", 1)
+        if a == b:
+            out.append((g, float(rows.columns["stokes_a"][0]), rows))
+    return sorted(out, key=lambda x: (math.isnan(x[1]), x[1]))
+
+
+def _st_colour(st, lo, hi):
+    """Colour of a Stokes number on a log scale from lo to hi (viridis); tracers black."""
+    from matplotlib import colormaps
+
+    if not (st > 0):
+        return "k"
+    f = 0.5 if hi <= lo else (math.log(st) - math.log(lo)) / (math.log(hi) - math.log(lo))
+    return colormaps["viridis"](0.9 * min(max(f, 0.0), 1.0))
+
+
+def at_separation(rows, r_eta: float, column: str):
+    """(value, error, r/η of the bin) of ``column`` in the bin nearest to r_eta (in log r)."""
+    t = rows.columns
+    k = int(np.nanargmin(np.abs(np.log(t["r_eta"]) - math.log(r_eta))))
+    return float(t[column][k]), float(t[column + "_err"][k]), float(t["r_eta"][k])
+
+
+def plot_across_stokes(run, path, r_eta: float = 1.0) -> bool:
+    """One run, all its sets by Stokes number: g(r/η) with error bands; g and K/(η² u_η) at
+    r ≈ ``r_eta`` η against St; the w_r PDFs at 2η and at the largest separation against a
+    Gaussian.  All from the run's rows of the tidy pair table (readers.pair_table)."""
+    from matplotlib.ticker import FuncFormatter
+
+    groups = _same_set_groups(run)
+    if not groups:
+        return False
+    sts = [st for _, st, _ in groups if st > 0]
+    lo, hi = (min(sts), max(sts)) if sts else (1.0, 1.0)
+    fig = _figure(14, 8.4)
+    (ax_g, ax_gs, ax_ks), (ax_p1, ax_p2, ax_leg) = fig.subplots(2, 3)
+    xs, gs, ks = [], [], []
+    for g, st, rows in groups:
+        c = _st_colour(st, lo, hi)
+        t = rows.columns
+        label = f"{g.split('__')[0]} (St = {st:.3g})"
+        ok = np.isfinite(t["g"])
+        ax_g.plot(t["r_eta"][ok], t["g"][ok], "-o", ms=3, color=c, label=label)
+        err = np.where(np.isfinite(t["g_err"][ok]), t["g_err"][ok], 0.0)
+        ax_g.fill_between(t["r_eta"][ok], t["g"][ok] - err, t["g"][ok] + err, color=c, alpha=0.25,
+                          lw=0)
+        xs.append((st, c))
+        gs.append(at_separation(rows, r_eta, "g"))
+        ks.append(at_separation(rows, r_eta, "kernel_norm"))
+        pdfs = run.pdfs.get(g, [])
+        if pdfs:
+            _draw_pdf(ax_p1, pdfs[0], c, label=f"{label}, F = {pdfs[0].flatness:.2f}")
+        if len(pdfs) > 1:
+            _draw_pdf(ax_p2, pdfs[-1], c, label=f"{label}, F = {pdfs[-1].flatness:.2f}")
+    for ax, vals, what in ((ax_gs, gs, "g"), (ax_ks, ks, "K / (η² u$_η$)")):
+        for (st, c), (v, e, r) in zip(xs, vals):
+            ax.errorbar([st], [v], yerr=[e if math.isfinite(e) else 0.0], color=c, marker="o",
+                        capsize=3)
+        r_used = sorted({round(v[2], 3) for v in vals})
+        # symlog: tracers (St = 0) on the linear stretch, the others on a log scale
+        ax.set_xscale("symlog", linthresh=0.5 * lo)
+        ax.set(xlabel="St (tracers at 0)", ylabel=what, xlim=(-0.1 * lo, 2.0 * hi),
+               title=f"{what} at r ≈ {', '.join(f'{r:.3g}' for r in r_used)} η")
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    ax_gs.axhline(1.0, color="k", lw=0.8, ls=":")
+    ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)",
+             title="radial distribution function (band: ± standard error)")
+    ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
+    _log_axis(ax_g.xaxis)
+    for ax, i in ((ax_p1, 0), (ax_p2, -1)):
+        _gaussian(ax)
+        first = next((run.pdfs[g][i] for g, _, _ in groups if len(run.pdfs.get(g, [])) > (i == -1)),
+                     None)
+        where = _pdf_label(first) if first is not None else "—"
+        ax.set(yscale="log", xlabel="w$_r$ / σ$_r$", ylabel="PDF", xlim=(-8, 8), ylim=(1e-5, 2),
+               title=f"PDF of w$_r$ at {where}" + (" (largest separation)" if i == -1 else ""))
+        ax.legend(fontsize=7, loc="lower center")
+    for ax in (ax_g, ax_gs, ax_ks, ax_p1, ax_p2):
+        ax.grid(alpha=0.3, which="both")
+    ax_leg.axis("off")
+    handles, labels = ax_g.get_legend_handles_labels()
+    ax_leg.legend(handles, labels, loc="center", fontsize=9, frameon=False,
+                  title=f"{run.name}: sets by Stokes number")
+    fig.savefig(path)
+    return True
 
 
 # --- tables and the page -------------------------------------------------------------------
@@ -472,22 +518,23 @@ def _cell(e) -> str:
     return f"<td>{_num(e.mean)} ± {_num(e.stderr, 2)}{mark}</td>"
 
 
-def small_r(ps: PairStats):
-    """(r/eta, g Estimate, K Estimate) in the smallest separation bin."""
-    conv = ps.rdf.converged
-    return (float(ps.r_eta[0]),
-            Estimate(float(ps.rdf.mean[0]), float(ps.rdf.stderr[0]), ps.rdf.start_time, conv,
-                     ps.rdf.note),
-            Estimate(float(ps.kernel.mean[0]), float(ps.kernel.stderr[0]), ps.kernel.start_time,
-                     ps.kernel.converged, ps.kernel.note))
+def small_r(rows):
+    """(r/η, g Estimate, K Estimate) in the smallest separation bin of a group's table rows."""
+    t = rows.columns
+    conv = bool(t["converged"][0])
+    note = str(t["window"][0])
+    return (float(t["r_eta"][0]),
+            Estimate(float(t["g"][0]), float(t["g_err"][0]), float(t["t_start"][0]), conv, note),
+            Estimate(float(t["kernel"][0]), float(t["kernel_err"][0]), float(t["t_start"][0]),
+                     conv, note))
 
 
 def _groups(runs):
     seen = []
     for r in runs:
-        for p in r.pairs:
-            if p.group not in seen:
-                seen.append(p.group)
+        for g in pair_groups(r):
+            if g not in seen:
+                seen.append(g)
     return seen
 
 
@@ -497,7 +544,7 @@ def _pair_rows(runs):
     values at the same r are compared."""
     rows = []
     for g in _groups(runs):
-        per = [next((p for p in r.pairs if p.group == g), None) for r in runs]
+        per = [group_rows(r, g) for r in runs]
         r0s = [None if p is None else float(f"{small_r(p)[0]:.6g}") for p in per]
         for r0 in dict.fromkeys(r for r in r0s if r is not None):
             same = [p if r == r0 else None for p, r in zip(per, r0s)]
@@ -562,7 +609,8 @@ def runs_table(runs) -> str:
     for i, r in enumerate(runs):
         t = r.series["time"]
         span = f"{t[0]:.4g} – {t[-1]:.4g}" if t.size else "no samples"
-        sets = ", ".join(f"{html.escape(p.group)} ({p.n_samples})" for p in r.pairs) or "—"
+        sets = ", ".join(f"{html.escape(g)} ({int(group_rows(r, g).columns['samples'][0])})"
+                         for g in pair_groups(r)) or "—"
         rows.append(f'<tr><td class="t"><span class="sw" style="background:{COLOURS[i % len(COLOURS)]}">'
                     f"</span>{_name(r.name)}</td>"
                     f"<td class=\"t path\"><code>{html.escape(str(r.path))}</code></td>"
@@ -630,11 +678,37 @@ METHODS_NOTE = (
     "transient is cut by MSER-5 (White 1997, <i>Simulation</i> 69:323; White, Cobb &amp; Spratt "
     "2000, Proc. Winter Simulation Conf.), and the error bar of the correlated remainder comes "
     "from Flyvbjerg–Petersen blocking (Flyvbjerg &amp; Petersen 1989, <i>J. Chem. Phys.</i> "
-    "91:461), with the plateau level chosen automatically. Pair statistics are treated per "
-    "bin the same way over their samples. <sup class=\"nc\">†</sup> marks estimates whose "
-    "transient or blocking plateau could not be established (series too short): their error "
-    "bars are likely too small. Differences are flagged when they exceed twice the combined "
+    "91:461), with the plateau level chosen automatically. Pair statistics are pooled ratios of "
+    "sums over each set pair's averaging window (see the pair section). <sup class=\"nc\">†"
+    "</sup> marks estimates whose transient or blocking plateau could not be established (series "
+    "too short): their error bars are likely too small. Differences are flagged when they exceed twice the combined "
     "standard error, which assumes independent runs (different seeds).")
+
+
+PAIRS_NOTE = (
+    "g(r) = Σ counts / Σ expected counts of uniformly distributed particles; ⟨w<sub>r</sub>²⟩ "
+    "and ⟨|w<sub>r</sub>|⟩ = Σ sums / Σ counts; collision kernel K = Σ 2πr²|w<sub>r</sub>| / Σ "
+    "expected = 2πr²g⟨|w<sub>r</sub>|⟩ (Wang, Wexler &amp; Zhou 2000, JFM 415:117): ratios of "
+    "sums over the samples of each set pair's averaging window (below), so sparse bins are "
+    "neither dropped nor counted as zero. Error bars: delta method for a ratio (Cochran 1977, "
+    "Sampling Techniques) with Flyvbjerg–Petersen blocking of the correlated samples. PDFs of "
+    "w<sub>r</sub> normalised by its r.m.s. σ<sub>r</sub> in the bin, pooled over the window, "
+    "with a unit Gaussian (dotted) and the flatness F; every separation bin has its own "
+    "sinh-spaced w<sub>r</sub> bins, fine at its own scale.")
+
+
+def _windows_table(runs) -> str:
+    """The averaging window of every set pair of every run."""
+    rows = ["<tr><th>run</th><th>set pair</th><th>St</th><th>window</th><th>samples</th></tr>"]
+    for r in runs:
+        for g in pair_groups(r):
+            t = group_rows(r, g).columns
+            st = ", ".join(dict.fromkeys(f"{float(x):.3g}" for x in (t["stokes_a"][0],
+                                                                     t["stokes_b"][0])))
+            rows.append(f"<tr><td>{_name(r.name)}</td><td>{html.escape(g)}</td><td>{st}</td>"
+                        f'<td class="t">{html.escape(str(t["window"][0]))}</td>'
+                        f"<td>{int(t['samples'][0])}</td></tr>")
+    return '<div class="scroll"><table>' + "\n".join(rows) + "</table></div>"
 
 
 def write_csv(runs, path):
@@ -655,7 +729,7 @@ def write_csv(runs, path):
                 e = r.estimates[q]
                 row += [repr(float(e.mean)), repr(float(e.stderr))]
             for g in groups:
-                ps = next((p for p in r.pairs if p.group == g), None)
+                ps = group_rows(r, g)
                 if ps is None:
                     row += [""] * 5
                 else:
@@ -672,9 +746,10 @@ def default_report_folder(run_dirs) -> Path:
     return Path(os.path.commonpath([str(p.parent) for p in paths])) / "report"
 
 
-def write_report(run_dirs, out_dir) -> Path:
-    """Write index.html, its PNG figures and summary.csv for `run_dirs` into `out_dir`;
-    returns the path of index.html. ConfigError for a folder that is not an eddybox run."""
+def write_report(run_dirs, out_dir, separation: float = 1.0) -> Path:
+    """Write index.html, its PNG figures, summary.csv and pairs.csv for `run_dirs` into
+    `out_dir`; returns the path of index.html. `separation`: r/η at which g and K are drawn
+    against St. ConfigError for a folder that is not an eddybox run."""
     if not run_dirs:
         raise ConfigError("report: give at least one run folder")
     try:
@@ -686,7 +761,11 @@ def write_report(run_dirs, out_dir) -> Path:
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise ConfigError(f"--out {out}: exists and is not a folder")
-    runs = [load_run(d, n) for d, n in zip(run_dirs, _run_names(run_dirs))]
+    from eddybox.solver.study.readers import pair_table
+
+    names = _run_names(run_dirs)
+    table = pair_table(run_dirs, names)  # the one reading of pairs.h5 behind figures and CSV
+    runs = [load_run(d, n, table) for d, n in zip(run_dirs, names)]
     out.mkdir(parents=True, exist_ok=True)
 
     plot_timeseries(runs, out / "timeseries.png")
@@ -696,15 +775,22 @@ def write_report(run_dirs, out_dir) -> Path:
         name = f"pairs_{g}.png"
         plot_pairs(runs, g, out / name)
         pair_figs.append((g, name))
+    st_figs = []
+    for i, run in enumerate(runs):
+        name = f"pairs_stokes_{i}.png"
+        if plot_across_stokes(run, out / name, separation):
+            st_figs.append((run, name))
     write_csv(runs, out / "summary.csv")
+    table.write_csv(out / "pairs.csv")
 
     created = datetime.datetime.now().strftime("%Y-%m-%d %H:%M")
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
              f"<title>eddybox report: {html.escape(', '.join(r.name for r in runs))}</title>"
              f"<style>{CSS}</style></head><body>",
              f"<h1>eddybox report — {len(runs)} run{'s' if len(runs) > 1 else ''}</h1>",
-             f'<p class="legend">written {created} by eddybox {__version__}; table as '
-             f'<a href="summary.csv">summary.csv</a></p>',
+             f'<p class="legend">written {created} by eddybox {__version__}; tables as '
+             f'<a href="summary.csv">summary.csv</a> and, every pair curve with its errors, '
+             f'<a href="pairs.csv">pairs.csv</a></p>',
              f'<p class="note">{METHODS_NOTE}</p>',
              "<h2>Runs</h2>", f'<div class="scroll">{runs_table(runs)}</div>',
              "<h2>Stationary means</h2>",
@@ -733,15 +819,14 @@ def write_report(run_dirs, out_dir) -> Path:
         parts.append("<p>No spectra recorded (stats.spectra.every is null, or no dissipation).</p>")
     parts.append("<h2>Particle pair statistics</h2>")
     if pair_figs:
-        parts.append('<p class="legend">Per set pair: g(r) = counts / expected counts for '
-                     "uniformly distributed particles; PDFs of the radial relative velocity "
-                     "w<sub>r</sub> normalised by its r.m.s. in the bin nearest to η (solid) and "
-                     "to the integral scale L (dashed), with a unit Gaussian (dotted); collision "
-                     "kernel K(r) = 2πr²g(r)⟨|w<sub>r</sub>|⟩ (Wang, Wexler &amp; Zhou 2000, JFM "
-                     "415:117). Error bars: per-bin standard errors over the samples (MSER-5 + "
-                     "blocking). The w<sub>r</sub> bins are sized once, from the particle "
-                     "velocity r.m.s. at the first sample, so near r = η only a few of them hold "
-                     "pairs; the legend gives how many.</p>")
+        parts.append(f'<p class="legend">{PAIRS_NOTE}</p>')
+        parts.append(_windows_table(runs))
+        for run, name in st_figs:
+            parts += [f"<h3>{_name(run.name)}: across Stokes numbers</h3>",
+                      f'<p class="legend">g and K/(η² u<sub>η</sub>) in the bin nearest to r = '
+                      f"{separation:g} η; colour: Stokes number (tracers black).</p>",
+                      f'<img src="{html.escape(name)}" alt="pair statistics across Stokes '
+                      f'numbers of {html.escape(run.name)}">']
         for g, name in pair_figs:
             parts += [f"<h3>{html.escape(g.replace('__', ' × '))}</h3>",
                       f'<img src="{html.escape(name)}" alt="pair statistics of {html.escape(g)}">']

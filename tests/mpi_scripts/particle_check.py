@@ -17,7 +17,9 @@ from mpi4py import MPI
 from eddybox.particles import migration as mig
 from eddybox.particles.interpolation import interpolate
 from eddybox.particles.pairs import (
+    bin_centres,
     pair_statistics,
+    separation_wr_edges,
     velocity_rms_1comp,
     wr_edges_from_rms,
 )
@@ -251,13 +253,16 @@ def check_pairs(lay, bm, out, g_x, g_v, g_ids, res):
     ng = len(gx)
     na = ng // 2                         # set a: ids below 1000 + na; set b: the rest
     in_a = ids < 1000 + na
-    wr_edges = wr_edges_from_rms(velocity_rms_1comp(gv), 21)
+    rms = velocity_rms_1comp(gv)
     rng = np.random.default_rng(99)
     sub_a = 1000 + np.sort(rng.choice(na, na * 2 // 5, replace=False))
     sub_b = 1000 + na + np.sort(rng.choice(ng - na, (ng - na) // 3, replace=False))
     results = {}
     edge_sets = (("log", np.geomspace(0.05, 1.9, 13)), ("lin", np.linspace(0.0, 1.2, 9)))
     for edges_name, r_edges in edge_sets:
+        # log bins: one sinh row of w_r edges per separation bin (as a run); linear: one row
+        wr_edges = (separation_wr_edges(0.5 * rms * bin_centres(r_edges), 8 * rms, 21)
+                    if edges_name == "log" else wr_edges_from_rms(rms, 21))
         for sub in (False, True):
             r_sub = r_edges[len(r_edges) // 2] if sub else None
             # one set (a)
