@@ -11,6 +11,7 @@ import numpy as np
 
 from eddybox.particles import migration
 from eddybox.particles import pairs as pairs_kernel
+from eddybox.particles.lagrangian import ROW_FIELDS, LagrangianCorrelator
 from eddybox.solver.errors import ConfigError, OutputError
 from eddybox.solver.estimators import pairs as pair_estimators
 from eddybox.solver.run.checkpoint import restore_rng_state, rng_state_array
@@ -103,20 +104,26 @@ class _LazyFileHook(Hook):
 
 
 class ParticleHook(_LazyFileHook):
-    """Per-set series (every `series_every`, default the fluid cadence) and snapshots of the
-    first `max_count` particles by id (every `every`)."""
+    """Per-set series (every `series_every`, default the fluid cadence), snapshots of the
+    first `max_count` particles by id with their image counters (every `every`), and the
+    Lagrangian statistics of each set (`stats.lagrangian`: the first `count` particles by id,
+    every `every`; particles.lagrangian)."""
 
     name = "particles"
 
-    def __init__(self, cfg, path: str, series_every):
+    def __init__(self, cfg, path: str, series_every, lagrangian=None):
         """`cfg`: the section stats.particles; `series_every`: its series cadence resolved
-        (default the fluid series cadence)."""
+        (default the fluid series cadence); `lagrangian`: the section stats.lagrangian."""
         super().__init__(series_every, path)
         self.snap = Schedule(cfg.every)
         self.max_count = cfg.max_count
+        self.lag_cfg = lagrangian
+        self.lag = Schedule(None if lagrangian is None else lagrangian.every)
+        self.correlators = {}  # set name -> LagrangianCorrelator (rank 0), made at the release
+        self._pending_correlators = {}  # their checkpointed state, until the sets exist
 
     def due(self, t, step):
-        return self.schedule.due(t, step) or self.snap.due(t, step)
+        return self.schedule.due(t, step) or self.snap.due(t, step) or self.lag.due(t, step)
 
     def run(self, sim):
         ps = sim.particles
@@ -141,9 +148,29 @@ class ParticleHook(_LazyFileHook):
                     rec[f"/sets/{s.name}/snapshots/position"] = g["x"]
                     rec[f"/sets/{s.name}/snapshots/velocity"] = g["v"]
                     rec[f"/sets/{s.name}/snapshots/fluid_velocity"] = g["u_seen"]
+                    rec[f"/sets/{s.name}/snapshots/image"] = g["image"]
             if self.file is not None:
                 self.file.append(rec)
             self.snap.done(sim.t)
+        if self.lag.due(sim.t, sim.step):
+            rec = {}
+            for s in ps.sets:
+                g = ps.unwrapped_sample(s, self.lag_cfg.count)  # collective; rank 0 only
+                if g is not None:
+                    row = self._correlator(s).add(sim.t, g["v"], g["x"])
+                    base = f"/sets/{s.name}/lagrangian"
+                    rec[f"{base}/time"] = sim.t
+                    rec.update({f"{base}/{k}": v for k, v in row.items()})
+            if self.file is not None:
+                self.file.append(rec)
+            self.lag.done(sim.t)
+
+    def _correlator(self, s):
+        c = self.correlators.get(s.name)
+        if c is None:
+            c = self.correlators[s.name] = LagrangianCorrelator(min(self.lag_cfg.count, s.count),
+                                                                self.lag_cfg.lags())
+        return c
 
     def _build(self, sim):
         cols, fixed, gattrs = [], [], {}
@@ -164,21 +191,81 @@ class ParticleHook(_LazyFileHook):
             fixed.append(Fixed(f"{snap}/ids", np.arange(s.first_id, s.first_id + m, dtype=np.int64), "1",
                                "ids of the particles in the snapshots (the same every time)",
                                scale="ids"))
+            cols.append(Column(f"{snap}/image", "1", "periodic image counters: the unwrapped "
+                               "position is position + image L", dtype=np.int32, tail=(m, 3),
+                               dims=[f"{snap}/time", f"{snap}/ids", f"{snap}/component"]))
             fixed.append(Fixed(f"{snap}/component", np.arange(3, dtype=np.int64), "1",
                                "vector component: 0 x, 1 y, 2 z", scale="component"))
+            if self.lag_cfg is not None and self.lag_cfg.every is not None:
+                c, f, a = _lagrangian_datasets(s, self.lag_cfg,
+                                               sim.particles.release_scales.get("time", sim.t))
+                cols += c
+                fixed += f
+                gattrs[f"{base}/lagrangian"] = a
         scales = [f"/sets/{s.name}/series/time" for s in sim.particles.sets] + \
                  [f"/sets/{s.name}/snapshots/time" for s in sim.particles.sets]
+        if self.lag_cfg is not None and self.lag_cfg.every is not None:
+            scales += [f"/sets/{s.name}/lagrangian/time" for s in sim.particles.sets]
         return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
                           group_attrs=gattrs, sample_scales=scales)
 
     def state(self):
         st = super().state()
         st["snapshots"] = self.snap.state()
+        st["lagrangian"] = {"schedule": self.lag.state(),
+                            **{name: c.state() for name, c in self.correlators.items()}}
         return st
 
     def load_state(self, st):
         super().load_state(st)
         self.snap.load_state(st["snapshots"])
+        lag = st.get("lagrangian", {})
+        if "schedule" in lag:
+            self.lag.load_state(lag["schedule"])
+        self._pending_correlators = {k: v for k, v in lag.items() if k != "schedule"}
+
+    def open(self, sim, resume_samples=None):
+        # the correlators of a restart: their history as the checkpoint holds it
+        if sim.is_root:
+            for name, st in self._pending_correlators.items():
+                s = next(x for x in sim.particles.sets if x.name == name)
+                self._correlator(s).load_state(st)
+        self._pending_correlators = {}
+        super().open(sim, resume_samples)
+
+
+def _lagrangian_datasets(s, cfg, release):
+    """Columns, fixed datasets and group attributes of /sets/<name>/lagrangian (the rows of
+    particles.lagrangian.LagrangianCorrelator: samples x lags, vectors x components)."""
+    base = f"/sets/{s.name}/lagrangian"
+    time, lag, comp = f"{base}/time", f"{base}/lag", f"{base}/component"
+    nl = cfg.lags() + 1
+    described = {
+        "count": ("1", "particles pooled at each lag (0 until the origin sample is held)"),
+        "lag_time": ("T", "lag t - t_origin of each column (the actual sample times)"),
+        "vv": ("L^2 T^-2", "sum over the particles of v(t) . v(t - lag)"),
+        "v_start": ("L T^-1", "sum over the particles of v(t - lag), the origin velocities"),
+        "v_end": ("L T^-1", "sum over the particles of v(t)"),
+        "dx2": ("L^2", "sum over the particles of |X(t) - X(t - lag)|^2, X = position + image L "
+                "the unwrapped position"),
+        "dx": ("L", "sum over the particles of X(t) - X(t - lag)"),
+    }
+    cols = [Column(time, "T", "sample time", dims=[time])]
+    for k, (shape, dtype) in ROW_FIELDS.items():
+        u, d = described[k]
+        dims = [time, lag] + ([comp] if shape else [])
+        cols.append(Column(f"{base}/{k}", u, d, dtype=dtype, tail=(nl,) + shape, dims=dims))
+    fixed = [Fixed(lag, cfg.every * np.arange(nl), "T", "nominal lag k every (lag_time holds "
+                   "the actual one)", scale="lag"),
+             Fixed(comp, np.arange(3, dtype=np.int64), "1", "vector component: 0 x, 1 y, 2 z",
+                   scale="component")]
+    m = min(cfg.count, s.count)
+    start = (release + pair_estimators.TRANSIENT_TAU_P * _finite(s.tau_p)
+             if cfg.start == "auto" else float(cfg.start))
+    attrs = {"particles": m, "first_id": s.first_id, "every": cfg.every, "max_lag": cfg.max_lag,
+             "window": "auto" if cfg.start == "auto" else "start", "window_start": start,
+             "bytes_per_particle": 48 * nl}
+    return cols, fixed, attrs
 
 
 PAIR_COLUMNS = {

@@ -35,7 +35,9 @@ Properties (derived, checked in tests/test_particle_integrator.py):
   x_{n+1} = x_n + h (u_n + u*)/2 and v_{n+1} = u*; tau_p = 0 uses these limits directly;
 * tau_p -> infinity: E -> 1, q1 -> h, q2, q3 -> 0, ballistic motion x_{n+1} = x_n + h v_n.
 
-Positions are kept in the periodic box [0, L) by :func:`wrap_periodic` after each stage.
+Positions are kept in the periodic box [0, L) by :func:`wrap_periodic` after each stage; the
+run loop counts the wraps per particle (:func:`track_images`), so x + image L is the unwrapped
+trajectory.
 
 One interpolation per step: the multistep ETD2 of Cox & Matthews (2002, eq. 6) takes the
 seen velocity linear in time through the last two interpolated values instead of through a
@@ -53,8 +55,8 @@ import math
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["etd_coefficients", "wrap_periodic", "etd_predict", "etd_correct", "etd_multistep",
-           "PARTICLE_SCHEMES", "ETD2RK", "ETD2Multistep"]
+__all__ = ["etd_coefficients", "wrap_periodic", "track_images", "etd_predict", "etd_correct",
+           "etd_multistep", "PARTICLE_SCHEMES", "ETD2RK", "ETD2Multistep"]
 
 # Below this |z| the phi functions are summed from their Taylor series (z^k / (k + j)!),
 # which avoids the cancellation in e^z - 1 - z ...; 20 terms give full double precision.
@@ -112,6 +114,31 @@ def wrap_periodic(x, L):
     if r >= L:
         r -= L
     return r + 0.0  # turns -0.0 into +0.0
+
+
+@njit(parallel=True, cache=True)
+def track_images(x_start, x, L, image, disp):
+    """Displacements over a step and periodic image counters, from the positions in [0, L)
+    before (``x_start``) and after (``x``) the step:
+
+        d = x − x_start reduced to [−L/2, L/2],   image −= 1 where d was above L/2 (the
+        particle left through the face at 0), image += 1 where it was below −L/2 (through L),
+
+    so that x + image L is the unwrapped position, continuous along the trajectory. Exact as
+    long as no particle moves L/2 or more in one step (the ghost layers of the interpolation
+    already limit a step to a few grid cells). Writes d into ``disp``, which may be
+    ``x_start`` itself (each element is read before it is written)."""
+    half = 0.5 * L
+    for i in prange(x.shape[0]):
+        for a in range(3):
+            d = x[i, a] - x_start[i, a]
+            if d > half:
+                d -= L
+                image[i, a] -= 1
+            elif d < -half:
+                d += L
+                image[i, a] += 1
+            disp[i, a] = d
 
 
 @njit(parallel=True, cache=True)

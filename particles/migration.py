@@ -48,6 +48,8 @@ __all__ = [
     "halo",
     "halo_arrays",
     "distributed_pair_statistics",
+    "own_and_halo_parts",
+    "distributed_ghost_collisions",
     "gather_by_id",
     "scatter_by_owner",
 ]
@@ -563,6 +565,36 @@ _SUM_FIELDS = ("sum_wr", "sum_wr2", "sum_abs", "sum_inward", "sum_trans")
 _INT_FIELDS = ("counts", "wr_hist", "wr_under", "wr_over")
 
 
+def own_and_halo_parts(layout, blockmap: BlockMap, box_length: float, r_max: float, own_a: dict,
+                       own_b: dict | None, run) -> list:
+    """The pair rule of the distributed pair kernels: every pair within r_max counted exactly
+    once, on one rank.  ``own_a`` (and ``own_b`` for two sets) are this rank's particles as
+    row arrays with the positions under "x"; ``run(rows_a, rows_b or None)`` computes one
+    part.  Returns the parts of this rank:
+
+    * one set: run(own, None), the pairs i < j on this rank, plus run(own, halo), where the
+      halo holds the particles of HIGHER ranks within r_max of this block
+      (``halo_arrays(..., sources="higher")``). A pair of particles on ranks A < B is counted
+      on A only: B's particle lies within r_max of A's block, and A's particle is in no halo
+      of B. (Counting on both ranks and halving would evaluate the pair twice, in two
+      different roundings.)
+    * two sets a, b: run(own_a, own_b + halo_b), the halo of b from ALL other ranks. A pair
+      (a on A, b on B) is counted on A only, since only A owns a; if B != A, b is in A's halo
+      of b. No halo of a is needed.
+    Collective (the halo exchange); serial layout: the own parts alone."""
+    serial = layout.comm is None or layout.size == 1
+    if own_b is None:
+        parts = [run(own_a, None)]
+        if not serial:
+            parts.append(run(own_a, halo_arrays(layout, blockmap, box_length, r_max, own_a,
+                                                sources="higher")))
+        return parts
+    if not serial:
+        got = halo_arrays(layout, blockmap, box_length, r_max, own_b, sources="all")
+        own_b = {k: np.concatenate([np.asarray(v), got[k]]) for k, v in own_b.items()}
+    return [run(own_a, own_b)]
+
+
 def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges, wr_edges,
                                 pos_a, vel_a, pos_b=None, vel_b=None, *, n_a_global=None,
                                 n_b_global=None, ids_a=None, ids_b=None, r_sub=None,
@@ -572,18 +604,8 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
     `particles.pairs.pair_statistics` on all particles gathered (counts and histograms
     exactly, sums to round-off), on every rank.
 
-    Each rank passes the particles it owns. Pair rule (every pair counted exactly once):
-
-    * one set: own x own with the same-set kernel (pairs i < j on this rank), plus own x halo
-      with the cross kernel, where the halo holds the particles of HIGHER ranks within r_max
-      of this block (``halo_arrays(..., sources="higher")``). A pair of particles on ranks
-      A < B with r < r_max is counted on A only: B's particle lies within r_max of A's block,
-      and A's particle is in no halo of B. (Counting on both ranks and halving would count
-      the same pair with w_r computed twice, in two different roundings; a pair at a bin edge
-      could then fall into two bins and leave half a count.)
-    * two sets a, b: own_a x (own_b + halo_b), the halo of b from ALL other ranks. A pair
-      (a on A, b on B) is counted on A only, since only A owns a; if B != A, b is in A's
-      halo of b. No halo of a is needed.
+    Each rank passes the particles it owns; every pair is counted exactly once, on one rank
+    (:func:`own_and_halo_parts`).
 
     w_r is symmetric in the two particles, so the kernel's order within a pair does not
     matter. Integer results are summed over the ranks (Allreduce), float sums are gathered
@@ -639,7 +661,11 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
         m_b = m_a
     local_r_sub = None if k_sub == nr else float(r_edges[k_sub])
 
-    def run(pa, va, pb, vb, sa, sb):
+    def run(own_a, own_b):
+        pa, va, sa = own_a["x"], own_a["v"], own_a.get("in")
+        pb = vb = sb = None
+        if own_b is not None:
+            pb, vb, sb = own_b["x"], own_b["v"], own_b.get("in")
         if pa.shape[0] == 0 or (pb is not None and pb.shape[0] == 0):
             return None
         sub = None
@@ -649,27 +675,15 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
                                             r_sub=None if sub is None else local_r_sub,
                                             subsample=sub, ncell=ncell, nchunks=nchunks)
 
-    parts = []
-    r_max = float(r_edges[-1])
-    if same:
-        parts.append(run(pos_a, vel_a, None, None, in_a, None))
-        if not serial:
-            send = {"x": pos_a, "v": vel_a}
-            if in_a is not None:
-                send["in"] = in_a
-            got = halo_arrays(layout, blockmap, box_length, r_max, send, sources="higher")
-            parts.append(run(pos_a, vel_a, got["x"], got["v"], in_a, got.get("in")))
-    else:
-        pb, vb, sb = pos_b, vel_b, in_b
-        if not serial:
-            send = {"x": pos_b, "v": vel_b}
-            if in_b is not None:
-                send["in"] = in_b
-            got = halo_arrays(layout, blockmap, box_length, r_max, send, sources="all")
-            pb = np.concatenate([pos_b, got["x"]])
-            vb = np.concatenate([vel_b, got["v"]])
-            sb = None if in_b is None else np.concatenate([in_b, got["in"]])
-        parts.append(run(pos_a, vel_a, pb, vb, in_a, sb))
+    own_a = {"x": pos_a, "v": vel_a}
+    if in_a is not None:
+        own_a["in"] = in_a
+    own_b = None
+    if not same:
+        own_b = {"x": pos_b, "v": vel_b}
+        if in_b is not None:
+            own_b["in"] = in_b
+    parts = own_and_halo_parts(layout, blockmap, box_length, float(r_edges[-1]), own_a, own_b, run)
 
     nw = wr_edges.shape[1] - 1
     acc = {"counts": np.zeros(nr, np.int64), "wr_hist": np.zeros((nr, nw), np.int64),
@@ -703,6 +717,52 @@ def distributed_pair_statistics(layout, blockmap: BlockMap, box_length, r_edges,
         **{k: sums[i] for i, k in enumerate(_SUM_FIELDS)},
         subsampled=subsampled, n_a=n_a, n_b=n_b, m_a=int(m_a), m_b=int(m_b),
         r_sub=r_sub_used)
+
+
+def _max_float(comm, x: float) -> float:
+    from mpi4py import MPI
+
+    return float(comm.allreduce(float(x), op=MPI.MAX))
+
+
+def distributed_ghost_collisions(layout, blockmap: BlockMap, box_length, radius, pos_a, disp_a,
+                                 pos_b=None, disp_b=None, ncell=None, nchunks=None) -> int:
+    """`particles.pairs.ghost_collisions` of particles spread over the ranks, the same number
+    on every rank and equal to the serial count on all particles gathered.
+
+    Each rank passes the particles it owns at the START of the step (positions there, and the
+    displacements over it, before any migration). The candidate radius r_search = R plus the
+    longest displacements of the step over all ranks; the halos reach that far, and every pair
+    is tested exactly once, on one rank (:func:`own_and_halo_parts`), in the same arithmetic
+    as the serial kernel. The counts are summed over the ranks (Allreduce). Collective."""
+    same = pos_b is None
+    pos_a = np.ascontiguousarray(pos_a, dtype=np.float64).reshape(-1, 3)
+    disp_a = np.ascontiguousarray(disp_a, dtype=np.float64).reshape(-1, 3)
+    reach_a = pairs_kernel.longest_step(disp_a)
+    reach_b = reach_a
+    if not same:
+        pos_b = np.ascontiguousarray(pos_b, dtype=np.float64).reshape(-1, 3)
+        disp_b = np.ascontiguousarray(disp_b, dtype=np.float64).reshape(-1, 3)
+        reach_b = pairs_kernel.longest_step(disp_b)
+    serial = layout.comm is None or layout.size == 1
+    if not serial:
+        reach_a = _max_float(layout.comm, reach_a)
+        reach_b = reach_a if same else _max_float(layout.comm, reach_b)
+    r_search = pairs_kernel.contact_search_radius(radius, reach_a, reach_b)
+
+    def run(own_a, own_b):
+        if own_b is None:
+            return pairs_kernel.ghost_collisions(own_a["x"], own_a["v"], box_length, radius,
+                                                 r_search=r_search, ncell=ncell, nchunks=nchunks)
+        return pairs_kernel.ghost_collisions(own_a["x"], own_a["v"], box_length, radius,
+                                             own_b["x"], own_b["v"], r_search=r_search,
+                                             ncell=ncell, nchunks=nchunks)
+
+    own_b = None if same else {"x": pos_b, "v": disp_b}
+    parts = own_and_halo_parts(layout, blockmap, box_length, r_search,
+                               {"x": pos_a, "v": disp_a}, own_b, run)
+    count = sum(parts)
+    return count if serial else int(_sum_ints(layout.comm, np.array([count]))[0])
 
 
 # ---------------------------------------------------------------------------------------------

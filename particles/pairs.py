@@ -64,6 +64,9 @@ __all__ = [
     "cell_count",
     "snap_to_edge",
     "subset_indices",
+    "ghost_collisions",
+    "contact_search_radius",
+    "longest_step",
 ]
 
 # Order of the five accumulated sums (last axis of the per-chunk sum buffer).
@@ -303,6 +306,49 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
                 sums[k, 4] += 0.5 * (vbuf[a] - w2)
 
 
+@njit(cache=True, inline="always")
+def _work_item(item, use_cells, ncell, same, start_a, noffsets):
+    """(i0, i1, tasks, cx, cy, cz) of one work item of a cell-list driver: the particles
+    [i0, i1) of cell ``item`` of set a and its number of tasks (its own pairs when ``same``,
+    then one per neighbour-cell offset), or particle ``item`` alone (fallback, all pairs)."""
+    if use_cells:
+        return (start_a[item], start_a[item + 1], noffsets + (1 if same else 0),
+                item // (ncell * ncell), (item // ncell) % ncell, item % ncell)
+    return item, item + 1, 1, 0, 0, 0
+
+
+@njit(cache=True, inline="always")
+def _task_partners(item, task, use_cells, same, ncell, cx, cy, cz, box, h, pad, offsets,
+                   start_b, nb, lo_t, hi_t):
+    """(j0, j1, sx, sy, sz, triangular, prune) of one task of a work item: the partners
+    [j0, j1) of set b, the periodic shift of their image, whether the range is the item's own
+    cell (pairs j > i only) and whether the partner cell's box [lo_t, hi_t] (filled here) may
+    prune particle i.  Fallback (no cells): every later particle (same set) or all of b."""
+    if not use_cells:
+        return item + 1 if same else 0, nb, 0.0, 0.0, 0.0, False, False
+    if same and task == 0:
+        return start_b[item], start_b[item + 1], 0.0, 0.0, 0.0, True, False
+    o = task - 1 if same else task
+    # neighbour cell, and the periodic image of its particles seen from here
+    nx = cx + offsets[o, 0]
+    ny = cy + offsets[o, 1]
+    nz = cz + offsets[o, 2]
+    sx = -box if nx < 0 else (box if nx >= ncell else 0.0)
+    sy = -box if ny < 0 else (box if ny >= ncell else 0.0)
+    sz = -box if nz < 0 else (box if nz >= ncell else 0.0)
+    nx %= ncell
+    ny %= ncell
+    nz %= ncell
+    d = (nx * ncell + ny) * ncell + nz
+    lo_t[0] = nx * h - pad
+    lo_t[1] = ny * h - pad
+    lo_t[2] = nz * h - pad
+    hi_t[0] = (nx + 1) * h + pad
+    hi_t[1] = (ny + 1) * h + pad
+    hi_t[2] = (nz + 1) * h + pad
+    return start_b[d], start_b[d + 1], sx, sy, sz, False, True
+
+
 @njit(cache=True, parallel=True)
 def _pair_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_edges, rtable, inv_dr,
                  wr_edges, w_mode, wpar, wtable, w_shift, hist, under, over, sums, scratch,
@@ -336,62 +382,103 @@ def _pair_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_edges, 
         lo_t = cellbox[t, 0]
         hi_t = cellbox[t, 1]
         for item in range(t, nwork, nchunks):
-            if use_cells:
-                i0 = start_a[item]
-                i1 = start_a[item + 1]
-                ntask = offsets.shape[0] + (1 if same else 0)
-                cz = item % ncell
-                cy = (item // ncell) % ncell
-                cx = item // (ncell * ncell)
-            else:
-                i0 = item
-                i1 = item + 1
-                ntask = 1
+            i0, i1, ntask, cx, cy, cz = _work_item(item, use_cells, ncell, same, start_a,
+                                                   offsets.shape[0])
             if i0 == i1:
                 continue
             for task in range(ntask):
-                sx = 0.0
-                sy = 0.0
-                sz = 0.0
-                if not use_cells:
-                    j0 = item + 1 if same else 0
-                    j1 = nb
-                    triangular = False
-                    prune = False
-                elif same and task == 0:
-                    j0 = i0
-                    j1 = i1
-                    triangular = True
-                    prune = False
-                else:
-                    o = task - 1 if same else task
-                    # neighbour cell, and the periodic image of its particles seen from here
-                    nx = cx + offsets[o, 0]
-                    ny = cy + offsets[o, 1]
-                    nz = cz + offsets[o, 2]
-                    sx = -box if nx < 0 else (box if nx >= ncell else 0.0)
-                    sy = -box if ny < 0 else (box if ny >= ncell else 0.0)
-                    sz = -box if nz < 0 else (box if nz >= ncell else 0.0)
-                    nx %= ncell
-                    ny %= ncell
-                    nz %= ncell
-                    d = (nx * ncell + ny) * ncell + nz
-                    j0 = start_b[d]
-                    j1 = start_b[d + 1]
-                    triangular = False
-                    prune = True
-                    lo_t[0] = nx * h - pad
-                    lo_t[1] = ny * h - pad
-                    lo_t[2] = nz * h - pad
-                    hi_t[0] = (nx + 1) * h + pad
-                    hi_t[1] = (ny + 1) * h + pad
-                    hi_t[2] = (nz + 1) * h + pad
+                j0, j1, sx, sy, sz, triangular, prune = _task_partners(
+                    item, task, use_cells, same, ncell, cx, cy, cz, box, h, pad, offsets,
+                    start_b, nb, lo_t, hi_t)
                 if j0 == j1:
                     continue
                 _block(sa, i0, i1, sb, j0, j1, triangular, not use_cells, sx, sy, sz, lo_t,
                        hi_t, prune, box, r2_edges, rtable, inv_dr, wr_edges, w_mode, wpar,
                        wtable, w_shift, hist_t, under_t, over_t, sums_t, r2buf_t, jbuf_t, kbuf_t,
                        hbuf_t, wbuf_t, vbuf_t, rbuf_t)
+
+
+@njit(cache=True)
+def _contact_block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, prune, box,
+                   r2_search, r2_contact):
+    """Contacts among the pairs i in [i0, i1) of ``sa`` and j in [j0, j1) of ``sb`` (rows x, y,
+    z of the positions at the start of the step, then the displacements over it), partners
+    seen as in `_block`.  With separation d(s) = d0 + s Δd on s in [0, 1] and
+    f(s) = |d(s)|² − R² = a s² + 2 b s + c (a = |Δd|², b = d0·Δd, c = |d0|² − R²), a pair
+    makes contact when it starts outside (c > 0) and the convex f reaches 0 on [0, 1]: it
+    approaches (b < 0), and f(1) = a + 2b + c <= 0 when its minimum s = −b/a lies beyond the
+    step, else f(−b/a) = c − b²/a <= 0.  Candidates closer than r_search only."""
+    half = 0.5 * box
+    xa, ya, za, ua, va, wa = sa[0], sa[1], sa[2], sa[3], sa[4], sa[5]
+    xb, yb, zb, ub, vb, wb = sb[0], sb[1], sb[2], sb[3], sb[4], sb[5]
+    n = 0
+    for i in range(i0, i1):
+        xi = xa[i] - sx
+        yi = ya[i] - sy
+        zi = za[i] - sz
+        if prune:
+            gx = max(lo[0] - xi, 0.0, xi - hi[0])
+            gy = max(lo[1] - yi, 0.0, yi - hi[1])
+            gz = max(lo[2] - zi, 0.0, zi - hi[2])
+            if gx * gx + gy * gy + gz * gz >= r2_search:
+                continue
+        ui = ua[i]
+        vi = va[i]
+        wi = wa[i]
+        for j in range(i + 1 if triangular else j0, j1):
+            dx = xb[j] - xi
+            dy = yb[j] - yi
+            dz = zb[j] - zi
+            if min_image:
+                dx = _min_image(dx, box, half)
+                dy = _min_image(dy, box, half)
+                dz = _min_image(dz, box, half)
+            r2 = dx * dx + dy * dy + dz * dz
+            c = r2 - r2_contact
+            if r2 >= r2_search or c <= 0.0:
+                continue
+            ex = ub[j] - ui
+            ey = vb[j] - vi
+            ez = wb[j] - wi
+            b = dx * ex + dy * ey + dz * ez
+            if b >= 0.0:
+                continue
+            a = ex * ex + ey * ey + ez * ez
+            if -b >= a:
+                n += a + 2.0 * b + c <= 0.0
+            else:
+                n += a * c <= b * b
+    return n
+
+
+@njit(cache=True, parallel=True)
+def _contact_kernel(sa, start_a, sb, start_b, same, ncell, box, offsets, r2_search, r2_contact,
+                    counts, cellbox):
+    """Parallel driver of `_contact_block` on the work items and tasks of `_pair_kernel`;
+    chunk t adds its contacts to counts[t]."""
+    nchunks = counts.shape[0]
+    nb = sb.shape[1]
+    use_cells = ncell >= 3
+    nwork = ncell * ncell * ncell if use_cells else sa.shape[1]
+    h = box / ncell
+    pad = 1e-9 * h
+    for t in prange(nchunks):
+        lo_t = cellbox[t, 0]
+        hi_t = cellbox[t, 1]
+        n = 0
+        for item in range(t, nwork, nchunks):
+            i0, i1, ntask, cx, cy, cz = _work_item(item, use_cells, ncell, same, start_a,
+                                                   offsets.shape[0])
+            if i0 == i1:
+                continue
+            for task in range(ntask):
+                j0, j1, sx, sy, sz, triangular, prune = _task_partners(
+                    item, task, use_cells, same, ncell, cx, cy, cz, box, h, pad, offsets,
+                    start_b, nb, lo_t, hi_t)
+                if j0 < j1:
+                    n += _contact_block(sa, i0, i1, sb, j0, j1, triangular, not use_cells, sx,
+                                        sy, sz, lo_t, hi_t, prune, box, r2_search, r2_contact)
+        counts[t] = n
 
 
 # ----------------------------------------------------------------------------- helpers on arrays
@@ -682,15 +769,8 @@ def _sorted_by_cell(pos, vel, box_length, ncell):
 def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell, nchunks):
     """Counts, w_r histogram, under/overflow and the five sums for one range of bins."""
     same = pos_b is None
-    r_max = float(r_edges[-1])
-    max_cells = cell_count(box_length, r_max)
-    if ncell is None:
-        # at most ~8 cells per particle: smaller r_max only adds empty cells (memory, loop time)
-        n_total = pos_a.shape[0] + (0 if same else pos_b.shape[0])
-        ncell = min(max_cells, max(3, int(np.cbrt(_MAX_CELLS_PER_PARTICLE * n_total))))
-    elif not 1 <= ncell <= max_cells:
-        raise ValueError(f"ncell = {ncell} gives cells smaller than r_max = {r_max}; "
-                         f"allowed 1..{max_cells}")
+    ncell = _cells_for(box_length, float(r_edges[-1]),
+                       pos_a.shape[0] + (0 if same else pos_b.shape[0]), ncell)
     if nchunks is None:
         nchunks = max(_DEFAULT_CHUNKS, numba.get_num_threads())
     nr, nw = r_edges.size - 1, wr_edges.shape[1] - 1
@@ -714,6 +794,19 @@ def _histograms(pos_a, vel_a, pos_b, vel_b, box_length, r_edges, wr_edges, ncell
                  scratch, iscratch, np.empty((nchunks, 2, 3)))
     hist = hist.sum(axis=0).reshape(nr, nw)
     return hist.sum(axis=1), hist, under.sum(axis=0), over.sum(axis=0), sums.sum(axis=0).T
+
+
+def _cells_for(box_length, r_max, n_total, ncell=None):
+    """Cells per axis for a cell list whose cells are at least r_max wide: ``ncell`` checked,
+    or the most that fit but no more than about 8 per particle (a smaller r_max only adds
+    empty cells: memory and loop time)."""
+    max_cells = cell_count(box_length, r_max)
+    if ncell is None:
+        return min(max_cells, max(3, int(np.cbrt(_MAX_CELLS_PER_PARTICLE * n_total))))
+    if not 1 <= ncell <= max_cells:
+        raise ValueError(f"ncell = {ncell} gives cells smaller than r_max = {r_max}; "
+                         f"allowed 1..{max_cells}")
+    return ncell
 
 
 def _r_bin_table(r_edges, size=_R_TABLE_SIZE):
@@ -820,6 +913,82 @@ def _checked_subset(idx, n):
     if idx.size and (idx[0] < 0 or idx[-1] >= n):
         raise ValueError(f"subsample indices must lie in [0, {n})")
     return idx.astype(np.int64)
+
+
+#: relative padding of the candidate radius of `ghost_collisions` (rounding never hides a contact)
+CONTACT_PAD = 1e-9
+
+
+def contact_search_radius(radius: float, reach_a: float, reach_b: float) -> float:
+    """Largest start separation of a pair that can make contact within a step: R plus the
+    longest displacements of the two sets (|Δd| <= |d_i| + |d_j|), padded by CONTACT_PAD."""
+    return (float(radius) + float(reach_a) + float(reach_b)) * (1.0 + CONTACT_PAD)
+
+
+def longest_step(disp) -> float:
+    """The largest |d| of the rows of a displacement array (0 without rows)."""
+    d = np.asarray(disp, dtype=np.float64).reshape(-1, 3)
+    return float(np.sqrt(np.max(np.einsum("ij,ij->i", d, d)))) if d.shape[0] else 0.0
+
+
+def ghost_collisions(pos_a, disp_a, box_length, radius, pos_b=None, disp_b=None,
+                     r_search=None, ncell=None, nchunks=None) -> int:
+    """Contacts within one time step of non-interacting ("ghost") particles: the pairs whose
+    separation crosses the collision radius R from above during the step, every particle
+    taken on a straight line from its start position x (``pos``) to x + d (``disp``).
+
+    With d0 the minimum-image separation at the start and Δd = d_j − d_i, the separation is
+    d(s) = d0 + s Δd for s in [0, 1], and a pair makes contact when
+
+        |d0| > R  and  min over s in [0, 1] of |d0 + s Δd|² <= R²,
+
+    the earliest root of |d0 + s Δd|² = R² lying in the step (Sundaram & Collins 1996,
+    J. Comput. Phys. 124, 337: contacts of particles moving on straight lines over a step, from
+    the quadratic in the contact time; from memory).  A pair that starts overlapping is not a
+    new contact: ghost particles pass through each other, and a pair counts again only after it
+    has separated beyond R.  Counting contacts of ghost particles gives the collision kernel of
+    point particles, Γ = N_c / (n_a n_b V Δt) (Wang, Wexler & Zhou 1998, Phys. Fluids 10, 266;
+    from memory): in steady state the inward flux 4πR² g(R) ⟨w_r⁻⟩(R).
+
+    One set (``pos_b is None``): each unordered pair once; two sets: every a–b pair once.
+    Positions outside [0, L) are wrapped.  Candidates come from the cell lists of
+    :func:`pair_statistics` with cells at least ``r_search`` wide (default
+    :func:`contact_search_radius` from the longest displacements here), so R <= the cell side;
+    cost O(pairs within r_search), memory O(n).  Returns the number of contacts.
+    """
+    same = pos_b is None
+    box_length = float(box_length)
+    if not (box_length > 0 and np.isfinite(box_length)):
+        raise ValueError(f"box length must be positive, got {box_length}")
+    radius = float(radius)
+    if not (radius > 0 and np.isfinite(radius)):
+        raise ValueError(f"collision radius must be positive and finite, got {radius}")
+    pos_a, disp_a = _as_particles(pos_a, disp_a, box_length, "set a")
+    if not same:
+        if disp_b is None:
+            raise ValueError("contacts across two sets need disp_b with pos_b")
+        pos_b, disp_b = _as_particles(pos_b, disp_b, box_length, "set b")
+    if pos_a.shape[0] == 0 or (not same and pos_b.shape[0] == 0):
+        return 0
+    if r_search is None:
+        reach = longest_step(disp_a)
+        r_search = contact_search_radius(radius, reach, reach if same else longest_step(disp_b))
+    r_search = float(r_search)
+    if not radius <= r_search < 0.5 * box_length:
+        raise ValueError(f"the collision radius {radius:.6g} plus the longest displacements of "
+                         f"the step ({r_search:.6g} in all) must stay below L/2 = "
+                         f"{0.5 * box_length:.6g}")
+    ncell = _cells_for(box_length, r_search, pos_a.shape[0] + (0 if same else pos_b.shape[0]),
+                       ncell)
+    if nchunks is None:
+        nchunks = max(_DEFAULT_CHUNKS, numba.get_num_threads())
+    sa, start_a = _sorted_by_cell(pos_a, disp_a, box_length, ncell)
+    sb, start_b = (sa, start_a) if same else _sorted_by_cell(pos_b, disp_b, box_length, ncell)
+    counts = np.zeros(nchunks, dtype=np.int64)
+    _contact_kernel(sa, start_a, sb, start_b, same, ncell, box_length,
+                    _HALF_SHELL if same else _FULL_SHELL, r_search * r_search, radius * radius,
+                    counts, np.empty((nchunks, 2, 3)))
+    return int(counts.sum())
 
 
 def pair_statistics(pos_a, vel_a, box_length, r_edges, wr_edges, pos_b=None, vel_b=None,

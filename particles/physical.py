@@ -34,7 +34,7 @@ def physical_numbers(radius, density, phys) -> dict:
     return {"tau_p": tau_p, "stokes": tau_p / tau_eta, "settling_velocity": v_s,
             "settling_parameter": v_s / u_eta, "froude": a_eta / g if g > 0 else math.inf,
             "reynolds_p": d * v_s / nu, "diameter_over_eta": d / eta, "density_ratio": density / rho_f,
-            "eta": eta, "tau_eta": tau_eta}
+            "eta": eta, "tau_eta": tau_eta, "u_eta": u_eta, "radius": radius, "density": density}
 
 
 def point_particle_warnings(name, num) -> list[str]:

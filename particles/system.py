@@ -19,8 +19,11 @@ from eddybox.particles.physical import physical_numbers
 
 #: steps between re-sorts of the particles by grid cell
 SORT_EVERY = 16
-#: float64 arrays of 3 components kept per particle: x, v, u_seen, u_prev; plus an int64 id
-_ARRAYS_PER_PARTICLE = 4
+#: float64 arrays of 3 components kept per particle: x, v, u_seen, u_prev and x_start (the
+#: position at the start of the step); plus an int64 id and three int32 image counters
+_ARRAYS_PER_PARTICLE = 5
+#: dtype of the periodic image counters (a particle crosses the box 2^31 times never)
+IMAGE_DTYPE = np.int32
 #: the particle time scheme of the run loop (integrator.PARTICLE_SCHEMES)
 SCHEME = "etd2"
 #: precision of the interleaved velocity copy the particles interpolate from
@@ -28,7 +31,7 @@ COPY_DTYPE = np.float32
 
 
 def bytes_per_particle() -> int:
-    return _ARRAYS_PER_PARTICLE * 3 * 8 + 8
+    return _ARRAYS_PER_PARTICLE * 3 * 8 + 8 + 3 * np.dtype(IMAGE_DTYPE).itemsize
 
 
 def interpolation_copy_bytes(n, max_order, ranks, layout, grid=None) -> int:
@@ -64,7 +67,12 @@ class ParticleSet:
         self._alloc(0)
 
     def _alloc(self, n):
-        self.x, self.v, self.u_seen, self.u_prev = (np.zeros((n, 3)) for _ in range(4))
+        self.x, self.v, self.u_seen, self.u_prev, self.x_start = (np.zeros((n, 3))
+                                                                  for _ in range(5))
+        #: periodic image counters: x + image L is the unwrapped position
+        self.image = np.zeros((n, 3), IMAGE_DTYPE)
+        #: displacements of the last step (x_start itself unless an observer needs both)
+        self.disp = self.x_start
         #: the multistep scheme's history: u_prev and h_prev hold the step before
         self.history, self.h_prev = False, 0.0
 
@@ -121,6 +129,10 @@ class ParticleSystem:
             self.ghost_q = migration.GhostField(layout, self.blockmap, 1, width)
         self.released = False
         self.release_scales = {}
+        #: called as f(sim) after every step of the released sets, before any migration: each
+        #: set then holds x_start (its positions at the start of the step) and disp (the
+        #: displacements over it); collision detection (particles.collisions) is one
+        self.after_step = []
         self._frozen_field = None
         self.scheme = integrator.PARTICLE_SCHEMES[SCHEME]()
         shape, start = ((self.ghost_u.array.shape, self.ghost_u.start) if self.distributed
@@ -181,7 +193,7 @@ class ParticleSystem:
             if s.x.shape[0] < 1024:
                 continue
             perm = interpolation.cell_order(s.x, np.full(3, self.h), np.full(3, self.n, np.int64))
-            for name in ("ids", "x", "v", "u_seen", "u_prev"):
+            for name in ("ids", "x", "v", "u_seen", "u_prev", "image"):
                 setattr(s, name, np.ascontiguousarray(getattr(s, name)[perm]))
 
     def seed(self, sim):
@@ -230,21 +242,29 @@ class ParticleSystem:
         if sim.step % SORT_EVERY == 0:
             self._sort_by_cell()
         for s in self.sets:
+            np.copyto(s.x_start, s.x)
             self.scheme.step(s, lambda pos, out, s=s: self._interp(field, s, pos, out), dt,
                              self.length)
             if s.tau_p == 0.0:
                 # a tracer's velocity is the fluid velocity where it is
                 s.v[...] = s.u_seen
+            # the wraps of this step into the image counters; the displacements overwrite
+            # x_start unless an observer needs both
+            s.disp = np.empty_like(s.x) if self.after_step else s.x_start
+            integrator.track_images(s.x_start, s.x, self.length, s.image, s.disp)
+        for observe in self.after_step:
+            observe(sim)
         if self.distributed:
             for s in self.sets:
                 history, h_prev = s.history, s.h_prev
                 got = migration.migrate(self.layout, self.blockmap, self.h,
                                         {"ids": s.ids, "x": s.x, "v": s.v, "u_seen": s.u_seen,
-                                         "u_prev": s.u_prev})
+                                         "u_prev": s.u_prev, "image": s.image})
                 s._alloc(got["x"].shape[0])
                 s.ids = got["ids"]
                 s.x[...], s.v[...], s.u_seen[...], s.u_prev[...] = (got["x"], got["v"],
                                                                     got["u_seen"], got["u_prev"])
+                s.image[...] = got["image"]
                 s.history, s.h_prev = history, h_prev
 
     def finite(self) -> bool:
@@ -305,22 +325,34 @@ class ParticleSystem:
 
     def snapshot(self, s, max_count):
         """The first `max_count` particles of set s by id, gathered in id order (rank 0;
-        None elsewhere)."""
+        None elsewhere): positions x, velocities v, the fluid velocity u_seen and the image
+        counters."""
         mine = (s.ids - s.first_id) < max_count
         return migration.gather_by_id(self.layout, s.ids[mine],
-                                      {"x": s.x[mine], "v": s.v[mine], "u_seen": s.u_seen[mine]})
+                                      {"x": s.x[mine], "v": s.v[mine], "u_seen": s.u_seen[mine],
+                                       "image": s.image[mine]})
+
+    def unwrapped_sample(self, s, max_count):
+        """Velocities and unwrapped positions x + image L of the first `max_count` particles
+        of set s by id, in id order (rank 0; None elsewhere). Collective."""
+        g = self.snapshot(s, max_count)
+        if g is None:
+            return None
+        return {"ids": g["ids"], "v": g["v"], "x": g["x"] + self.length * g["image"]}
 
     # -- checkpoint ---------------------------------------------------------------------------
     def state(self, sim) -> dict:
         st = {"released": np.int8(self.released)}
         for s in self.sets:
             # global id order, so any layout can restart from it
-            arrays = {"x": s.x, "v": s.v, "u_seen": s.u_seen, "u_prev": s.u_prev}
+            arrays = {"x": s.x, "v": s.v, "u_seen": s.u_seen, "u_prev": s.u_prev,
+                      "image": s.image}
             g = migration.gather_by_id(self.layout, s.ids, arrays)
             if g is None:
                 g = dict({k: a[:0] for k, a in arrays.items()}, ids=s.ids[:0])
             st[s.name] = {"ids": g["ids"], "x": g["x"], "v": g["v"], "u_seen": g["u_seen"],
-                          "u_prev": g["u_prev"], "history": np.int8(s.history),
+                          "u_prev": g["u_prev"], "image": g["image"],
+                          "history": np.int8(s.history),
                           "h_prev": np.float64(s.h_prev),
                           "tau_p": np.float64(np.nan if s.tau_p is None else s.tau_p),
                           "stokes": np.float64(np.nan if s.stokes is None else s.stokes),
@@ -336,14 +368,18 @@ class ParticleSystem:
             # a checkpoint without the multistep history restarts with one ETD2RK step
             history = bool(d.get("history", 0)) and "u_prev" in d
             d.setdefault("u_prev", d["u_seen"])
+            # checkpoints of versions before the image counters: unwrapped from here on
+            d.setdefault("image", np.zeros(np.shape(d["x"]), IMAGE_DTYPE))
             rows = d
             if d["x"].shape[0]:
-                rows = migration.scatter_by_owner(self.layout, self.blockmap, self.h, d["ids"],
-                                                  {k: d[k] for k in ("x", "v", "u_seen", "u_prev")})
+                rows = migration.scatter_by_owner(
+                    self.layout, self.blockmap, self.h, d["ids"],
+                    {k: d[k] for k in ("x", "v", "u_seen", "u_prev", "image")})
             s._alloc(rows["x"].shape[0])
             s.ids = np.asarray(rows["ids"], np.int64)
             s.x[...], s.v[...], s.u_seen[...] = rows["x"], rows["v"], rows["u_seen"]
             s.u_prev[...] = rows["u_prev"]
+            s.image[...] = rows["image"]
             s.history, s.h_prev = history, float(d.get("h_prev", 0.0))
             s.tau_p = None if np.isnan(d["tau_p"]) else float(d["tau_p"])
             s.stokes = None if np.isnan(d["stokes"]) else float(d["stokes"])
@@ -351,8 +387,9 @@ class ParticleSystem:
             s.released = self.released
 
     def inventory(self) -> dict:
-        inv = {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.u_prev))
-                                + s.ids.nbytes for s in self.sets)}
+        inv = {"particles": sum(sum(a.nbytes for a in (s.x, s.v, s.u_seen, s.u_prev, s.x_start,
+                                                       s.image)) + s.ids.nbytes
+                                for s in self.sets)}
         if self.distributed:
             inv["ghosted_velocity"] = self.ghost_u.array.nbytes
         inv["interpolation_copy"] = self._copy.nbytes

@@ -282,6 +282,67 @@ class ParticleStatsConfig(Section):
     series_every = Num(None, "time between per-set series (default stats.fluid.every)", "T", lo=0.0)
 
 
+class CollisionStatsConfig(Section):
+    """Ghost collisions: contacts of the non-interacting particles counted in every step
+    (particles on straight lines over the step), streamed per sample beside the kinematic
+    kernel measured at the same radius."""
+
+    every = _every(None, "time between samples of the detected collisions (detection itself "
+                   "runs in every step)")
+    radius = Num(None, "collision radius R; null: the sum of the two sets' radii (sets given "
+                 "by radius and density)", "η or L (see units)", lo=0.0, lo_open=True, hi=1e6)
+    units = Choice("eta", ("eta", "box"), "units of radius: Kolmogorov lengths at the release "
+                   "(R is then fixed for the run), or box units")
+    cross = Flag(False, "also collisions across every two sets")
+    shell = Num(0.05, "relative half-width of the shell R(1 ± shell) in which the kinematic "
+                "kernel 2πR²g⟨|w_r|⟩ is measured at each sample for comparison", "1", lo=0.0,
+                lo_open=True, hi=0.5)
+    start = NumOrWord("auto", "start of the averaging window of the default averages (report, "
+                      "readers): a time, or auto: the end of the transient after the release, "
+                      "by MSER-5 on the detected kernel, no earlier than release + 3 τ_p", "T",
+                      lo=0.0)
+
+    def summary(self):
+        if self.every is None:
+            return "collisions off"
+        r = ("R from the sets' radii" if self.radius is None else
+             f"R = {self.radius:g}" + (" eta" if self.units == "eta" else " L"))
+        return (f"collisions every {self.every:g}: {r}, shell ±{self.shell:g} R"
+                + (", cross" if self.cross else ""))
+
+
+class LagrangianStatsConfig(Section):
+    """Single-particle Lagrangian statistics per set: the velocity autocorrelation R_L(τ), the
+    mean-square displacement (from unwrapped positions) and T_L, with multiple time origins."""
+
+    every = Num(None, "time between Lagrangian samples (the lag resolution); null disables", "T",
+                lo=0.0, lo_open=True)
+    max_lag = Num(2.0, "largest lag τ of R_L(τ) and the mean-square displacement", "T", lo=0.0,
+                  lo_open=True)
+    count = Num(2000, "particles followed per set (the first by id); each keeps (max_lag/every "
+                "+ 1) velocities and positions, 48 bytes per lag", "1", lo=1, hi=10**9,
+                integer=True)
+    start = NumOrWord("auto", "start of the averaging window (time origins and ends at or after "
+                      "it): a time, or auto: release + 3 τ_p of each set", "T", lo=0.0)
+
+    def check(self):
+        if self.every is not None:
+            lags = self.max_lag / self.every
+            if not 1 <= round(lags) <= 10000:
+                raise ConfigError(f"stats.lagrangian.max_lag: {self.max_lag:g} gives "
+                                  f"{lags:.4g} lags of {self.every:g}; allowed: 1 to 10000 lags")
+
+    def lags(self) -> int:
+        """Lags kept: max_lag / every, rounded."""
+        return int(round(self.max_lag / self.every))
+
+    def summary(self):
+        if self.every is None:
+            return "lagrangian off"
+        return (f"lagrangian every {self.every:g} to lag {self.max_lag:g}, {self.count} "
+                "particles per set")
+
+
 class FieldsStatsConfig(Section):
     every = _every(None, "time between velocity-field snapshots (with XDMF sidecars)")
 
@@ -292,6 +353,8 @@ class StatsConfig(Section):
     fluid = FluidStatsConfig
     spectra = SpectraConfig
     pairs = PairStatsConfig
+    collisions = CollisionStatsConfig
+    lagrangian = LagrangianStatsConfig
     particles = ParticleStatsConfig
     fields = FieldsStatsConfig
 
@@ -375,7 +438,44 @@ def _cross_checks(c: RunConfig):
             raise ConfigError(f"stats.pairs.units: 'eta' needs the Kolmogorov length, but the "
                               f"flow {why} and has no dissipation; use units: box, or release "
                               "the particles later (particles.release)")
+    _collision_checks(c)
+    lg = c.stats.lagrangian
+    if lg.every is not None:
+        if not p.sets:
+            raise ConfigError("stats.lagrangian.every: Lagrangian statistics need particles.sets")
+        if lg.start != "auto" and lg.start >= c.time.end:
+            raise ConfigError(f"stats.lagrangian.start: {lg.start:g} is not before time.end "
+                              f"{c.time.end:g}; no sample would be averaged")
 
+
+def _collision_checks(c: RunConfig):
+    """stats.collisions: particles to collide, a radius for every group, an eta to measure it
+    in, and a radius that fits the box."""
+    col, p = c.stats.collisions, c.particles
+    if col.every is None:
+        return
+    if not p.sets:
+        raise ConfigError("stats.collisions.every: collision detection needs particles.sets")
+    if col.radius is None:
+        loose = [s.name for s in p.sets if s.radius is None]
+        if loose:
+            raise ConfigError(f"stats.collisions.radius: required, since set {loose[0]!r} is not "
+                              "given by radius and density (the collision radius is the sum of "
+                              "the two sets' radii only for such sets); give it in eta or box "
+                              "units (stats.collisions.units)")
+    elif col.units == "box" and col.radius >= 0.25 * c.grid.length:
+        raise ConfigError(f"stats.collisions.radius: {col.radius:g} must be below a quarter of "
+                          f"the box ({0.25 * c.grid.length:.6g}) with units: box")
+    if col.start != "auto" and col.start >= c.time.end:
+        raise ConfigError(f"stats.collisions.start: {col.start:g} is not before time.end "
+                          f"{c.time.end:g}; no sample would be averaged")
+    still = c.fluid.initial.kind == "rest" and (
+        c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
+    if (col.radius is not None and col.units == "eta" and c.fluid.initial.kind == "rest"
+            and (still or p.release == 0.0)):
+        raise ConfigError("stats.collisions.units: 'eta' needs the Kolmogorov length at the "
+                          "release, but the flow is at rest there and has no dissipation; use "
+                          "units: box, or release the particles later (particles.release)")
 
 # --- the Config object --------------------------------------------------------------------------
 def restart_mutable_keys(section=RunConfig, prefix="") -> list[str]:

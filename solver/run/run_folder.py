@@ -36,8 +36,9 @@ BOOKKEEPING = (MARKER, LOCK)
 _CHECKPOINT = r"checkpoint_\d+\.h5"
 _FIELD = r"field_\d+\.(?:h5|xdmf)"
 _SET_ASIDE = r"set-aside-[0-9TZ.\-]+"
-_FILES = re.compile(r"(?:config\.yaml(?:\.tmp\d+)?|log\.txt|(?:fluid|particles|pairs)\.h5"
-                    r"(?:\.rebuild|\.repair)?|" + re.escape(MARKER) + "|" + re.escape(LOCK) + ")")
+_FILES = re.compile(r"(?:config\.yaml(?:\.tmp\d+)?|log\.txt"
+                    r"|(?:fluid|particles|pairs|collisions)\.h5(?:\.rebuild|\.repair)?|"
+                    + re.escape(MARKER) + "|" + re.escape(LOCK) + ")")
 _FOLDERS = {
     "checkpoints": (re.compile(_CHECKPOINT + r"(?:\.tmp\d+)?"), {_SET_ASIDE: re.compile(_CHECKPOINT)}),
     "fields": (re.compile(r"field_\d+\.h5(?:\.tmp)?|" + _FIELD), {_SET_ASIDE: re.compile(_FIELD)}),

@@ -164,11 +164,19 @@ class Simulation:
             self.particles = ParticleSystem(c.particles, c.grid, c.seed, self.layout)
             series_every = st.particles.series_every
             self.hooks.append(ParticleHook(st.particles, os.path.join(self.out, "particles.h5"),
-                                           st.fluid.every if series_every is None else series_every))
+                                           st.fluid.every if series_every is None else series_every,
+                                           st.lagrangian))
             if st.pairs.every is not None:
                 self.hooks.append(PairHook(st.pairs, os.path.join(self.out, "pairs.h5"),
                                            [s.name for s in c.particles.sets], c.grid.length, c.seed,
                                            scales.predicted(config)))
+            if st.collisions.every is not None:
+                from eddybox.particles.collisions import CollisionHook
+
+                hook = CollisionHook(st.collisions, os.path.join(self.out, "collisions.h5"),
+                                     c.particles, c.grid.length)
+                self.particles.after_step.append(hook.detect)  # contacts in every step
+                self.hooks.append(hook)
         every = c.checkpoint.every
         self.checkpoint_schedule = Schedule(every, start=every or 0.0)
 
