@@ -585,6 +585,10 @@ class PairHook(_LazyFileHook):
                          "window": "auto" if self.c.start == "auto" else "start",
                          "window_floor": float(self.floor[g]),
                          "subsample_above": float(self.edges_units[self.k_sub]) if self.k_sub is not None else 0.0}
+            if sa.physical is not None and sb.physical is not None:
+                # sets given by radius: the physical Kolmogorov scales, for results in m and s
+                gattrs[g].update(physical_eta=sa.physical["eta"],
+                                 physical_tau_eta=sa.physical["tau_eta"])
         return SampleFile(self.path, cols, fixed, attrs=file_attrs(sim.config.hash()),
                           group_attrs=gattrs, sample_scales=scales)
 

@@ -15,10 +15,18 @@ and a particle of radius a, diameter d = 2a and density rho_p:
 The simulation matches St and Fr: tau_p = St tau_eta(sim) and |g_sim| = a_eta(sim) / Fr, along
 `particles.gravity` (or -z when that is zero). The point-particle, linear-drag model needs
 Re_p < ~1, d < eta and rho_p / rho_f >> 1 (no added mass, pressure-gradient or history force).
+
+Results go back to physical units by the same matching of Kolmogorov scales: a quantity of
+dimension L^a T^b measured in the simulation is divided by eta^a tau_eta^b of the simulation
+(at each sample) and multiplied by those of the physical flow (:func:`from_kolmogorov_units`):
+a collision kernel (L^3 T^-1) by eta_phys^3 / tau_eta_phys, a velocity by u_eta_phys, a
+collision rate per unit volume (L^-3 T^-1) by 1 / (eta_phys^3 tau_eta_phys).
 """
 from __future__ import annotations
 
 import math
+
+import numpy as np
 
 
 def physical_numbers(radius, density, phys) -> dict:
@@ -80,3 +88,10 @@ def particle_lines(p, predicted) -> tuple[list[str], list[str]]:
             lines.append(f"  {s.name:12s} {s.count:9d}  {kind}{st}")
         lines[-1] += f", interpolation {order} points"
     return lines, warn
+
+
+def from_kolmogorov_units(value, length: int, time: int, eta: float, tau_eta: float):
+    """A quantity of dimension L^length T^time given in Kolmogorov units (divided by
+    eta^length tau_eta^time of its own flow) in the units of the flow whose Kolmogorov length
+    and time are `eta` and `tau_eta` (m and s for the physical flow): value eta^a tau_eta^b."""
+    return np.asarray(value, dtype=float) * float(eta) ** length * float(tau_eta) ** time

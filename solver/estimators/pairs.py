@@ -38,7 +38,7 @@ __all__ = [
     "Window",
     "pooled_ratio",
     "ratio_estimate",
-    "ratio_function_estimate",
+    "quotient_estimate",
     "pooled_means",
     "pair_estimates",
     "sums_from_means",
@@ -116,47 +116,28 @@ def ratio_estimate(num, den, rule: str = "plateau") -> RatioEstimate:
     return RatioEstimate(value, err, n, reliable)
 
 
-def ratio_function_estimate(num, den, f, rel_step: float = 1e-6,
-                            rule: str = "plateau") -> RatioEstimate:
-    """A smooth function of several pooled ratios, Q = f(R_1, ..., R_J) with R_j = Σ_i num_ij /
-    Σ_i den_ij over the samples i, with its standard error (each output of a vector f apart).
-
-    Delta method (Cochran 1977, Sampling Techniques, §6.3, extended to several ratios; from
-    memory): with e_ij = (num_ij − R_j den_ij) / mean_i(den_ij) the linearised deviation of
-    ratio j in sample i, Q̂ − Q ≈ mean_i z_i with z_i = Σ_j (∂f/∂R_j) e_ij, and SE(Q̂) = SE(mean
-    z) by Flyvbjerg & Petersen (1989) blocking (:func:`ratio_estimate`'s errors are the case
-    f = R_j).  The derivatives are central differences with steps ``rel_step`` |R_j|.  ``num``
-    and ``den`` are (samples × J) (den broadcast); ratios without data (Σ den = 0) are NaN and
-    carry no derivative, and outputs f leaves NaN get a NaN error."""
-    y = np.asarray(num, dtype=float)
-    x = np.broadcast_to(np.asarray(den, dtype=float), y.shape)
-    n = y.shape[0]
-    m = pooled_ratio(y, x)
-    value = np.atleast_1d(np.asarray(f(m), dtype=float))
-    scalar = np.ndim(f(m)) == 0
-    err = np.full(value.shape, np.nan)
-    reliable = np.zeros(value.shape, dtype=bool)
-    ok = np.isfinite(m)
-    if n >= 2 and ok.any():
-        jac = np.zeros((m.size, value.size))
-        for j in np.nonzero(ok)[0]:
-            h = rel_step * max(abs(m[j]), 1e-300)
-            up, down = m.copy(), m.copy()
-            up[j] += h
-            down[j] -= h
-            jac[j] = (np.atleast_1d(f(up)) - np.atleast_1d(f(down))) / (2.0 * h)
-        xbar = x[:, ok].mean(axis=0)
-        e = (y[:, ok] - m[ok] * x[:, ok]) / xbar
-        with np.errstate(invalid="ignore"):
-            z = e @ np.where(np.isfinite(jac[ok]), jac[ok], 0.0)
-        cols = np.isfinite(value) & np.all(np.isfinite(jac[ok]), axis=0)
-        if cols.any():
-            ba = timeseries.block_average(z[:, cols], rule=rule)
-            err[cols] = ba.stderr
-            reliable[cols] = ba.reliable
-    if scalar:
-        return RatioEstimate(value[0], err[0], n, reliable[0])
-    return RatioEstimate(value, err, n, reliable)
+def quotient_estimate(num_a, den_a, num_b, den_b, rule: str = "plateau") -> RatioEstimate:
+    """The quotient Q = A / B of two pooled ratios of the same samples, A = Σ num_a / Σ den_a and
+    B = Σ num_b / Σ den_b (arrays (samples,) or (samples × bins)), with its standard error:
+    delta method (Cochran 1977, §6.3; from memory) with z_i = Q (e_a,i / A − e_b,i / B), e the
+    linearised deviations (num_i − R den_i) / mean(den) of each ratio, and blocking of the
+    correlated z_i (Flyvbjerg & Petersen 1989). The correlation of A and B is kept."""
+    ya, xa = np.asarray(num_a, dtype=float), np.asarray(den_a, dtype=float)
+    yb, xb = np.asarray(num_b, dtype=float), np.asarray(den_b, dtype=float)
+    a, b = pooled_ratio(ya, xa), pooled_ratio(yb, xb)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = a / b
+        z = q * ((ya - a * xa) / (xa.mean(axis=0) * a) - (yb - b * xb) / (xb.mean(axis=0) * b))
+    z2 = z if z.ndim == 2 else z[:, None]
+    err = np.full(z2.shape[1], np.nan)
+    reliable = np.zeros(z2.shape[1], dtype=bool)
+    ok = np.all(np.isfinite(z2), axis=0)
+    if z2.shape[0] >= 2 and ok.any():
+        ba = timeseries.block_average(z2[:, ok], rule=rule)
+        err[ok], reliable[ok] = ba.stderr, ba.reliable
+    if z.ndim == 1:
+        return RatioEstimate(float(q), err[0], z.shape[0], reliable[0])
+    return RatioEstimate(q, err, z.shape[0], reliable)
 
 
 def pooled_means(totals: dict) -> dict:

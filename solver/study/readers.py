@@ -28,6 +28,7 @@ import h5py
 import numpy as np
 
 from eddybox.particles.pairs import bin_centres
+from eddybox.particles.physical import from_kolmogorov_units
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.estimators import pairs as est
 
@@ -325,13 +326,18 @@ TABLE_COLUMNS = {
     "kernel_err": "L^3 T^-1", "kernel_norm": "1", "kernel_norm_err": "1", "pairs": "1",
     "samples": "1", "eta": "L", "tau_eta": "T", "t_start": "T", "t_end": "T", "window": "",
     "converged": "1",
+    # sets given by radius and density (NaN otherwise): through the physical Kolmogorov scales
+    "r_m": "m", "kernel_m3_s": "m^3 s^-1", "kernel_m3_s_err": "m^3 s^-1", "wr_abs_m_s": "m s^-1",
+    "wr_abs_m_s_err": "m s^-1",
 }
 
 
 @dataclass
 class PairTable:
     """A tidy table: one row per run, set pair and separation bin; ``columns`` maps each name
-    of :data:`TABLE_COLUMNS` to a 1-D array (object arrays for text), ``units`` to its units."""
+    of :data:`TABLE_COLUMNS` to a 1-D array (object arrays for text), ``units`` to its units.
+    (The tables of detected collisions and of particle sets, in study.particle_readers, are
+    the same kind of table with their own columns.)"""
 
     columns: dict
     units: dict = field(default_factory=lambda: dict(TABLE_COLUMNS))
@@ -340,7 +346,7 @@ class PairTable:
         return len(self.columns["run"]) if self.columns else 0
 
     def select(self, mask) -> "PairTable":
-        return PairTable({k: v[mask] for k, v in self.columns.items()}, self.units)
+        return type(self)({k: v[mask] for k, v in self.columns.items()}, self.units)
 
     def rows(self) -> list[dict]:
         return [{k: v[i] for k, v in self.columns.items()} for i in range(len(self))]
@@ -408,6 +414,7 @@ def pair_table(run_dirs, names=None, t_min: float | None = None) -> PairTable:
                        "kernel_err": avg.kernel_err, "kernel_norm": avg.kernel_norm,
                        "kernel_norm_err": avg.kernel_norm_err, "pairs": avg.counts,
                        "converged": (avg.reliable & avg.window.accepted).astype(np.int64)}
+            per_bin.update(_physical_pair_columns(series, keep, avg))
             for k in TABLE_COLUMNS:
                 cols[k] += [const[k]] * n if k in const else list(per_bin[k])
     out = {}
@@ -415,6 +422,27 @@ def pair_table(run_dirs, names=None, t_min: float | None = None) -> PairTable:
         out[k] = np.array(v, dtype=object if TABLE_COLUMNS[k] == "" else
                           (np.int64 if k in ("pairs", "samples", "converged") else np.float64))
     return PairTable(out)
+
+
+def _physical_pair_columns(series: PairSeries, keep, avg: PairAverage) -> dict:
+    """The physical columns of one group's rows (NaN unless the group records the physical
+    Kolmogorov scales of its sets, given by radius and density): r in m, the kernel in m³/s
+    from K/(η²u_η) pooled sample by sample, ⟨|w_r|⟩ in m/s from |w_r|/u_η pooled likewise
+    (eddybox.particles.physical.from_kolmogorov_units)."""
+    eta_p = float(series.attrs.get("physical_eta", math.nan))
+    tau_p = float(series.attrs.get("physical_tau_eta", math.nan))
+    n = avg.rdf.size
+    if not (math.isfinite(eta_p) and math.isfinite(tau_p)) or series.eta is None:
+        return {k: np.full(n, math.nan) for k in ("r_m", "kernel_m3_s", "kernel_m3_s_err",
+                                                   "wr_abs_m_s", "wr_abs_m_s_err")}
+    sums = series.sums()
+    u_eta = (series.eta / series.tau_eta)[:, None]
+    w = est.ratio_estimate(sums["sum_abs"][keep] / u_eta[keep], sums["counts"][keep])
+    return {"r_m": avg.r_eta * eta_p,
+            "kernel_m3_s": from_kolmogorov_units(avg.kernel_norm, 3, -1, eta_p, tau_p),
+            "kernel_m3_s_err": from_kolmogorov_units(avg.kernel_norm_err, 3, -1, eta_p, tau_p),
+            "wr_abs_m_s": from_kolmogorov_units(w.value, 1, -1, eta_p, tau_p),
+            "wr_abs_m_s_err": from_kolmogorov_units(w.stderr, 1, -1, eta_p, tau_p)}
 
 
 # --- fluid.h5 and run folders ---------------------------------------------------------------

@@ -2,7 +2,8 @@
 CSV table.
 
     write_report(["runs/a", "runs/b"], "runs/compare")
-        -> index.html, timeseries.png, spectra.png, pairs_<a>__<b>.png, summary.csv
+        -> index.html, timeseries.png, spectra.png, pairs_<a>__<b>.png, summary.csv (and, when
+           the runs recorded them, collisions.png/.csv, lagrangian.png, sets.csv)
 
 Every number is a stationary mean with a standard error from eddybox.solver.estimators.timeseries: MSER-5 removes
 the initial transient, Flyvbjerg-Petersen blocking gives the error bar of the correlated rest.
@@ -28,6 +29,7 @@ from eddybox.solver import __version__
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.estimators import timeseries as analysis
 from eddybox.solver.study.readers import check_run_dir, read_fluid_series, read_spectra
+from eddybox.solver.study.report_particles import particle_sections
 
 KOLMOGOROV_C = 1.5  # E(k) = C eps^(2/3) k^(-5/3) in the inertial range; Pope (2000) §6.5 (from memory)
 COLOURS = ["#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2",
@@ -832,6 +834,8 @@ def write_report(run_dirs, out_dir, separation: float = 1.0) -> Path:
                       f'<img src="{html.escape(name)}" alt="pair statistics of {html.escape(g)}">']
     else:
         parts.append("<p>No pair statistics recorded (no particles, or stats.pairs.every is null).</p>")
+    # detected collisions, Lagrangian statistics, physical units (study.report_particles)
+    parts += particle_sections(run_dirs, names, out, _figure, COLOURS)
     parts += ["<h2>Definitions</h2>", _definitions(), "</body></html>"]
     index = out / "index.html"
     index.write_text("\n".join(parts), encoding="utf-8")
