@@ -299,7 +299,7 @@ class CollisionStatsConfig(Section):
                 lo_open=True, hi=0.5)
     start = NumOrWord("auto", "start of the averaging window of the default averages (report, "
                       "readers): a time, or auto: the end of the transient after the release, "
-                      "by MSER-5 on the detected kernel, no earlier than release + 3 τ_p", "T",
+                      "by MSER-5 on g(R) in the shell, no earlier than release + 3 τ_p", "T",
                       lo=0.0)
 
     def summary(self):

@@ -62,7 +62,21 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
             inv["ghosted_velocity"] = g
         inv["interpolation_copy"] = interpolation_copy_bytes(n, order, ranks, layout,
                                                              cfg.parallel.grid)
+        inv.update(lagrangian_inventory(cfg))
     return inv
+
+
+def lagrangian_inventory(cfg) -> dict:
+    """The ring buffers of stats.lagrangian (particles.lagrangian): (max_lag/every + 1)
+    velocities and positions of `count` particles per set, held on rank 0 (counted here for
+    every rank, the safe side of the memory check)."""
+    lg = cfg.stats.lagrangian
+    if lg.every is None or not cfg.particles.sets:
+        return {}
+    from eddybox.particles.lagrangian import history_bytes
+
+    return {"lagrangian_history": sum(history_bytes(min(lg.count, s.count), lg.lags())
+                                      for s in cfg.particles.sets)}
 
 
 def live_inventory(sim) -> dict:
@@ -79,6 +93,9 @@ def live_inventory(sim) -> dict:
         inv["transpose_buffers"] = sim.layout.buffer_bytes()
     if sim.particles is not None:
         inv.update(sim.particles.inventory())
+        held = [c.nbytes for h in sim.hooks for c in getattr(h, "correlators", {}).values()]
+        if held:  # the Lagrangian ring buffers, made at the first sample after the release
+            inv["lagrangian_history"] = sum(held)
     return inv
 
 
@@ -122,6 +139,10 @@ def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
             # of w_r edges (one per separation bin)
             tmp["pair_histograms"] = (h * (max(PAIR_CHUNKS, threads) + 3) + 3 * groups * h
                                       + groups * pr.bins * (pr.wr_bins + 1) * 8)
+        if cfg.stats.collisions.every is not None:
+            # one step's detection of the largest set: its displacements, the cell-sorted
+            # positions and displacements with the cell of each particle (particles.pairs)
+            tmp["collision_detection"] = max(s.count for s in p.sets) * (3 * REAL + 6 * REAL + 8)
     return tmp
 
 

@@ -70,6 +70,38 @@ def _pairs_summary(path):
     return lines
 
 
+def _collisions_summary(path):
+    """Per group: the collision radius, samples, contacts, and the pooled detected kernel
+    beside the kinematic kernel at the same radius, with standard errors
+    (eddybox.solver.study.particle_readers.collision_average)."""
+    from eddybox.solver.study.particle_readers import (
+        collision_average,
+        collision_groups,
+        read_collision_group,
+    )
+
+    lines = []
+    for name in collision_groups(path):
+        series = read_collision_group(path, name)
+        n = series["time"].size
+        r = float(series["attrs"].get("radius", float("nan")))
+        lines.append(f"  collisions {name}: R = {r:.4g} L, {n} samples"
+                     + (f", t = {series['time'][0]:.4g} .. {series['time'][-1]:.4g}" if n else ""))
+        if not n:
+            continue
+        try:
+            avg = collision_average(series)
+        except ValueError as exc:
+            lines.append(f"    {exc}")
+            continue
+        lines.append(f"    averaging window: {avg['window'].describe()}, {avg['samples']} samples, "
+                     f"{avg['collisions']} contacts, R = {avg['radius_eta']:.3g} eta")
+        lines.append(f"    detected {_pm(avg['detected'], avg['detected_err'])}  kinematic at R "
+                     f"{_pm(avg['kinematic'], avg['kinematic_err'])}  ratio "
+                     f"{_pm(avg['ratio'], avg['ratio_err'])}  (L^3 T^-1)")
+    return lines
+
+
 def _pm(v, e) -> str:
     return f"{v:9.4g}±{e:<9.2g}"
 
@@ -159,6 +191,8 @@ def inspect_file(path, datasets=False) -> str:
             _series(f, lines)
         if "pairs" in f:
             lines += _pairs_summary(path)
+        elif "collisions" in f:
+            lines += _collisions_summary(path)
         elif "velocity_hat" in f and "state" in f:
             lines += _checkpoint_summary(path, f)
             if datasets:
@@ -181,7 +215,7 @@ def inspect_path(path, datasets=False) -> str:
         from eddybox.solver.run.run_folder import lock_holder
 
         out = [f"run folder {path}:"]
-        files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5")
+        files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5", "collisions.h5")
                  if os.path.exists(os.path.join(path, n))]
         if not files and not os.path.exists(os.path.join(path, "config.yaml")):
             raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")
