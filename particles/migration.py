@@ -731,18 +731,23 @@ def distributed_ghost_collisions(layout, blockmap: BlockMap, box_length, radius,
     on every rank and equal to the serial count on all particles gathered.
 
     Each rank passes the particles it owns at the START of the step (positions there, and the
-    displacements over it, before any migration). The candidate radius r_search = R plus the
-    longest displacements of the step over all ranks; the halos reach that far, and every pair
-    is tested exactly once, on one rank (:func:`own_and_halo_parts`), in the same arithmetic
-    as the serial kernel. The counts are summed over the ranks (Allreduce). Collective."""
+    displacements over it, before any migration). The kernel works on the midpoints of the
+    paths with the candidate radius r_search = R + half the longest displacements of the step
+    over all ranks (`pairs.contact_search_radius`); a midpoint lies within half its particle's
+    displacement of the owner's block, so the halos (by midpoint) reach r_search + half the
+    longest displacement of set a. Every pair is tested exactly once, on one rank
+    (:func:`own_and_halo_parts`), in the same arithmetic as the serial kernel; the counts are
+    summed over the ranks (Allreduce). Collective."""
     same = pos_b is None
-    pos_a = np.ascontiguousarray(pos_a, dtype=np.float64).reshape(-1, 3)
     disp_a = np.ascontiguousarray(disp_a, dtype=np.float64).reshape(-1, 3)
+    mid_a = pairs_kernel.contact_midpoints(np.reshape(pos_a, (-1, 3)), disp_a, box_length)
     reach_a = pairs_kernel.longest_step(disp_a)
     reach_b = reach_a
+    own_b = None
     if not same:
-        pos_b = np.ascontiguousarray(pos_b, dtype=np.float64).reshape(-1, 3)
         disp_b = np.ascontiguousarray(disp_b, dtype=np.float64).reshape(-1, 3)
+        own_b = {"x": pairs_kernel.contact_midpoints(np.reshape(pos_b, (-1, 3)), disp_b,
+                                                     box_length), "v": disp_b}
         reach_b = pairs_kernel.longest_step(disp_b)
     serial = layout.comm is None or layout.size == 1
     if not serial:
@@ -750,17 +755,15 @@ def distributed_ghost_collisions(layout, blockmap: BlockMap, box_length, radius,
         reach_b = reach_a if same else _max_float(layout.comm, reach_b)
     r_search = pairs_kernel.contact_search_radius(radius, reach_a, reach_b)
 
-    def run(own_a, own_b):
-        if own_b is None:
-            return pairs_kernel.ghost_collisions(own_a["x"], own_a["v"], box_length, radius,
-                                                 r_search=r_search, ncell=ncell, nchunks=nchunks)
-        return pairs_kernel.ghost_collisions(own_a["x"], own_a["v"], box_length, radius,
-                                             own_b["x"], own_b["v"], r_search=r_search,
-                                             ncell=ncell, nchunks=nchunks)
+    def run(rows_a, rows_b):
+        return pairs_kernel.contacts_at_midpoints(
+            rows_a["x"], rows_a["v"], box_length, radius, None if rows_b is None else rows_b["x"],
+            None if rows_b is None else rows_b["v"], r_search=r_search, ncell=ncell,
+            nchunks=nchunks)
 
-    own_b = None if same else {"x": pos_b, "v": disp_b}
-    parts = own_and_halo_parts(layout, blockmap, box_length, r_search,
-                               {"x": pos_a, "v": disp_a}, own_b, run)
+    parts = own_and_halo_parts(layout, blockmap, box_length,
+                               r_search + 0.5 * reach_a * (1.0 + pairs_kernel.CONTACT_PAD),
+                               {"x": mid_a, "v": disp_a}, own_b, run)
     count = sum(parts)
     return count if serial else int(_sum_ints(layout.comm, np.array([count]))[0])
 

@@ -222,6 +222,19 @@ def test_distributed_pairs_equal_serial_kernel(results, ranks, case):
 
 
 @pytest.mark.parametrize("ranks, case", ALL)
+def test_distributed_collisions_equal_serial_kernel(results, ranks, case):
+    found = results(ranks)["cases"][case]["collisions"]
+    assert len(found) == 4  # same / cross set, two collision radii
+    for name, c in found.items():
+        # the contacts counted over the ranks equal the serial count on all particles,
+        # exactly and the same on every rank (as the pair counts)
+        assert c["exact"], name
+        assert c["count"] > 20, name
+        if ranks > 1 and name.endswith("0.4"):
+            assert c["across_ranks"] > 0, name  # contacts of particles on different ranks
+
+
+@pytest.mark.parametrize("ranks, case", ALL)
 def test_gather_scatter_round_trip(results, ranks, case):
     r = results(ranks)["cases"][case]
     assert r["gather_exact"] and r["gather_none_elsewhere"]

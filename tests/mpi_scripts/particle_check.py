@@ -6,7 +6,8 @@ builds identically from a fixed seed, and prints one JSON line of flags and figu
 
 CASE is slab:N or pencil:P1xP2:N. References: numpy indexing of the global field (ghost
 planes), the serial interpolation kernel on the whole field, a brute-force numpy ownership and
-distance test (migration, halos), and the serial pair_statistics kernel on all particles.
+distance test (migration, halos), and the serial pair_statistics and ghost_collisions kernels
+on all particles.
 """
 import json
 import sys
@@ -18,6 +19,7 @@ from eddybox.particles import migration as mig
 from eddybox.particles.interpolation import interpolate
 from eddybox.particles.pairs import (
     bin_centres,
+    ghost_collisions,
     pair_statistics,
     separation_wr_edges,
     velocity_rms_1comp,
@@ -290,6 +292,37 @@ def check_pairs(lay, bm, out, g_x, g_v, g_ids, res):
                         "boundary_pairs": v[3]} for k, v in results.items()}
 
 
+def check_collisions(lay, bm, out, g_x, g_ids, res):
+    """Contacts counted over the ranks against the serial kernel on every particle: the
+    particles as owned now are the start positions, displacements drawn per id (some long
+    enough to carry a particle into the next block, so pairs across blocks and periodic faces
+    make contact)."""
+    ids = out["ids"]
+    order = np.argsort(g_ids)
+    gx = g_x[order]
+    ng = len(gx)
+    na = ng // 2
+    g_d = np.random.default_rng(4242).standard_normal((ng, 3)) * 0.15
+    disp = g_d[ids - 1000]
+    in_a = ids < 1000 + na
+    found = {}
+    for radius in (0.15, 0.4):
+        d = mig.distributed_ghost_collisions(lay, bm, L, radius, out["x"][in_a], disp[in_a])
+        s = ghost_collisions(gx[:na], g_d[:na], L, radius)
+        own = ghost_collisions(out["x"][in_a], disp[in_a], L, radius)
+        found[f"same_{radius}"] = (d == s and len(set(comm.allgather(d))) == 1, s,
+                                   s - int(comm.allreduce(own)))
+        d = mig.distributed_ghost_collisions(lay, bm, L, radius, out["x"][in_a], disp[in_a],
+                                             out["x"][~in_a], disp[~in_a])
+        s = ghost_collisions(gx[:na], g_d[:na], L, radius, gx[na:], g_d[na:])
+        own = ghost_collisions(out["x"][in_a], disp[in_a], L, radius, out["x"][~in_a],
+                               disp[~in_a])
+        found[f"cross_{radius}"] = (d == s and len(set(comm.allgather(d))) == 1, s,
+                                    s - int(comm.allreduce(own)))
+    res["collisions"] = {k: {"exact": every(v[0]), "count": v[1], "across_ranks": v[2]}
+                         for k, v in found.items()}
+
+
 def check_case(case):
     kind, grid, n = parse(case)
     lay = make_distributed_layout(n, L, kind, grid, comm)
@@ -300,6 +333,7 @@ def check_case(case):
     res["ghost_bytes_predicted"] = mig.ghost_field_bytes(n, 8, size, kind, grid)
     out, g_x, g_v, g_ids = check_particles(lay, bm, n, res)
     check_pairs(lay, bm, out, g_x, g_v, g_ids, res)
+    check_collisions(lay, bm, out, g_x, g_ids, res)
     return res
 
 
