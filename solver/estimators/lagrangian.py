@@ -85,7 +85,7 @@ class _Ratios:
         self.keep = keep
         self.c = np.where(keep, np.asarray(rows["count"], dtype=float), 0.0)
         self.total = self.c.sum(axis=0)
-        self.cbar = self.c.mean(axis=0)
+        self.cbar = self.total / max(self.c.shape[0], 1)
         self.rows = rows
 
     def __call__(self, name, weighted=False):

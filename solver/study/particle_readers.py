@@ -112,18 +112,19 @@ def collision_average(series: dict, t_min: float | None = None) -> dict:
     det = put("detected", est.ratio_estimate(s["collisions"], exposure))
     put("kinematic", est.ratio_estimate(sum_kernel, s["shell_expected"]))
     put("ratio", est.quotient_estimate(s["collisions"], exposure, sum_kernel, s["shell_expected"]))
-    put("detected_norm", est.ratio_estimate(s["collisions"] * norm, exposure))
-    put("kinematic_norm", est.ratio_estimate(sum_kernel * norm, s["shell_expected"]))
+    with np.errstate(invalid="ignore"):
+        put("detected_norm", est.ratio_estimate(s["collisions"] * norm, exposure))
+        put("kinematic_norm", est.ratio_estimate(sum_kernel * norm, s["shell_expected"]))
     put("g_contact", est.ratio_estimate(s["shell_counts"], s["shell_expected"]))
     put("wr_abs", est.ratio_estimate(s["shell_sum_abs"], s["shell_counts"]))
     # Kolmogorov units, sample by sample: kernels over eta^3/tau_eta, velocities over
-    # eta/tau_eta, the rate per unit volume times eta^3 tau_eta
-    k3 = tau / eta**3
-    put("detected_kolmogorov", est.ratio_estimate(s["collisions"] * k3, exposure))
-    put("kinematic_kolmogorov", est.ratio_estimate(sum_kernel * k3, s["shell_expected"]))
-    put("wr_abs_kolmogorov", est.ratio_estimate(s["shell_sum_abs"] * tau / eta, s["shell_counts"]))
-    put("rate_kolmogorov", est.ratio_estimate(s["collisions"] * eta**3 * tau / float(a["volume"]),
-                                              s["interval"]))
+    # eta/tau_eta, the rate per unit volume times eta^3 tau_eta (NaN in a flow at rest)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        k3, k1, rate = tau / eta**3, tau / eta, eta**3 * tau / float(a["volume"])
+        put("detected_kolmogorov", est.ratio_estimate(s["collisions"] * k3, exposure))
+        put("kinematic_kolmogorov", est.ratio_estimate(sum_kernel * k3, s["shell_expected"]))
+        put("wr_abs_kolmogorov", est.ratio_estimate(s["shell_sum_abs"] * k1, s["shell_counts"]))
+        put("rate_kolmogorov", est.ratio_estimate(s["collisions"] * rate, s["interval"]))
     out["converged"] = bool(np.all(det.reliable) and window.accepted)
     return out
 
