@@ -337,6 +337,23 @@ REFUSALS = [
          "particles": {"release": 0.1}}), "particles.sets[0].stokes"),
     ("overwrite-frozen-rest", _validate_first(
         {"fluid": {"initial": {"kind": "rest"}, "frozen": True}}), "particles.sets[0].stokes"),
+    ("overwrite-collisions-without-radius", _validate_first(
+        {"stats": {"collisions": {"every": 0.1}}}), "stats.collisions.radius"),
+    ("overwrite-collision-radius-beyond-box", _validate_first(
+        {"stats": {"collisions": {"every": 0.1, "radius": 2.0, "units": "box"}}}),
+     "stats.collisions.radius"),
+    ("overwrite-collisions-eta-at-rest", _validate_first(
+        {"fluid": {"initial": {"kind": "rest"}, "frozen": True},
+         "stats": {"collisions": {"every": 0.1, "radius": 0.5}}}), "stats.collisions.units"),
+    ("overwrite-collision-shell-zero", _validate_first(
+        {"stats": {"collisions": {"every": 0.1, "radius": 0.5, "shell": 0}}}),
+     "stats.collisions.shell"),
+    ("overwrite-lagrangian-too-many-lags", _validate_first(
+        {"stats": {"lagrangian": {"every": 1e-4, "max_lag": 5.0}}}), "stats.lagrangian.max_lag"),
+    ("overwrite-lagrangian-history-too-big", _validate_first(
+        {"particles": {"sets": [{"name": "drops", "stokes": 1.0, "count": 10**7}]},
+         "stats": {"lagrangian": {"every": 0.001, "max_lag": 10.0, "count": 10**7}}}),
+     "stats.lagrangian.count"),
     ("overwrite-length-1e300", _validate_first({"grid": {"length": 1e300}}), "grid.length"),
     ("overwrite-length-1e-300", _validate_first({"grid": {"length": 1e-300}}), "grid.length"),
     ("max-memory-too-small-for-grid", lambda c, mp: ["check", c.config({"grid": {"points": 512}}),

@@ -28,6 +28,13 @@ def _pairs(every=0.02, **kw):
             "particles": {"every": 0.5, "max_count": 40}}
 
 
+def _with_contacts_and_lagrangian(stats):
+    """The stats of `_pairs` plus detected collisions and Lagrangian statistics (their groups
+    must open in xarray too)."""
+    return dict(stats, collisions={"every": 0.1, "radius": 1.0, "cross": True},
+                lagrangian={"every": 0.1, "max_lag": 0.5, "count": 50})
+
+
 @pytest.fixture(scope="module")
 def auto_run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("pairauto")
@@ -35,7 +42,7 @@ def auto_run(tmp_path_factory):
                       particles={"release": 0.2, "sets": [
                           {"name": "light", "stokes": 0.5, "count": 1500},
                           {"name": "tracers", "tau_p": 0.0, "count": 1500}]},
-                      stats=_pairs(cross=True))
+                      stats=_with_contacts_and_lagrangian(_pairs(cross=True)))
     sim = Simulation(cfg, overwrite=True, quiet=True)
     assert sim.run() == 0
     return sim.out
@@ -98,7 +105,7 @@ def test_every_group_opens_in_xarray(auto_run):
     xr = pytest.importorskip("xarray")
     pytest.importorskip("h5netcdf")
     opened = 0
-    for name in ("pairs.h5", "particles.h5", "fluid.h5"):
+    for name in ("pairs.h5", "particles.h5", "fluid.h5", "collisions.h5"):
         path = f"{auto_run}/{name}"
         groups = ["/"]
         with h5py.File(path, "r") as f:
@@ -112,6 +119,13 @@ def test_every_group_opens_in_xarray(auto_run):
                     assert ds["r"].attrs["units"].startswith("eta")
                 if g.endswith("snapshots"):
                     assert ds["position"].dims == ("time", "ids", "component")
+                    assert ds["image"].dims == ("time", "ids", "component")
+                if g.endswith("lagrangian"):
+                    assert ds["dx"].dims == ("time", "lag", "component")
+                    assert ds["vv"].dims == ("time", "lag")
+                if g == "collisions/light__tracers":
+                    assert ds["kernel"].dims == ("time",)
+                    assert ds["kernel"].attrs["units"] == "L^3 T^-1"
     assert opened > 10
 
 

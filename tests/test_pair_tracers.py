@@ -1,9 +1,9 @@
 """w_r statistics of fluid tracers in stationary forced turbulence at 48^3 (Re_lambda ~ 30),
 resolved at every separation by the sinh-spaced w_r rows.
 
-One module-scoped run (about 25 s on one core): forced from t = 0, tracers released at t = 4
-(the energy is stationary by t ~ 4-6, see tests/test_fluid_core.py), 40 pair samples to t = 8,
-separations from 0.35 eta to 0.49 L (36 eta) in box units, pairs beyond 5 eta on a subsample.
+The run is the session's shared tracer run (tests/conftest.py, `tracers48`): forced from t = 0,
+40000 tracers released at t = 4, 40 pair samples to t = 20, separations from 0.35 eta to 0.49 L
+(36 eta) in box units, pairs beyond 5 eta on a subsample.
 
 Outside references: the velocity-derivative skewness computed from the spectral field
 (fluid.h5, the longitudinal increment w_r / r tends to du/dx as r -> 0, and in isotropic flow
@@ -19,31 +19,14 @@ import numpy as np
 import pytest
 
 from eddybox.solver.estimators.pairs import binned_moments
-from eddybox.solver.run.simulation import Simulation
 from eddybox.solver.study.readers import read_pair_group, time_average, wr_pdf
-from tests.conftest import make_config
-
-RELEASE = 4.0
+from tests.conftest import TRACER_RELEASE as RELEASE
 
 
 @pytest.fixture(scope="module")
-def tracers(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("tracers48")
-    cfg = make_config(
-        tmp, name="tracers48", seed=3, grid={"points": 48},
-        fluid={"viscosity": 0.015, "initial": {"kind": "spectrum", "energy": 0.3, "peak": 2}},
-        forcing={"kind": "ou", "band": 2.0, "timescale": 0.3, "dissipation": 0.1},
-        time={"scheme": "rk4", "cfl": 0.7, "end": 8.0},
-        particles={"release": RELEASE, "interpolation": 6,
-                   "sets": [{"name": "tracers", "tau_p": 0.0, "count": 40000}]},
-        stats={"fluid": {"every": 0.1}, "spectra": {"every": None},
-               "pairs": {"every": 0.1, "r_max": 3.1, "r_min": 0.025, "bins": 24, "units": "box",
-                         "spacing": "log", "subsample_above": 0.4, "subsample_count": 4000,
-                         "start": RELEASE}})
-    sim = Simulation(cfg, overwrite=True, quiet=True)
-    assert sim.run() == 0
-    series = read_pair_group(sim.out + "/pairs.h5", "tracers__tracers")
-    with h5py.File(sim.out + "/fluid.h5", "r") as f:
+def tracers(tracers48):
+    series = read_pair_group(tracers48 + "/pairs.h5", "tracers__tracers")
+    with h5py.File(tracers48 + "/fluid.h5", "r") as f:
         fluid = {k: f["series"][k][...] for k in ("time", "skewness", "eta")}
     return series, fluid
 

@@ -12,7 +12,7 @@ import yaml
 
 from eddybox.solver.cli import main
 
-OUTPUT_FILES = ("fluid.h5", "particles.h5", "pairs.h5")
+OUTPUT_FILES = ("fluid.h5", "particles.h5", "pairs.h5", "collisions.h5")
 
 FULL = {"name": "resilient", "seed": 13, "grid": {"points": 16},
         "fluid": {"viscosity": 0.03, "initial": {"kind": "spectrum", "energy": 0.5, "peak": 2}},
@@ -24,7 +24,9 @@ FULL = {"name": "resilient", "seed": 13, "grid": {"points": 16},
         "stats": {"fluid": {"every": 0.05}, "spectra": {"every": 0.2},
                   "pairs": {"every": 0.05, "r_max": 1.0, "bins": 6, "spacing": "linear", "units": "box",
                             "wr_bins": 11, "cross": True, "subsample_above": 0.6, "subsample_count": 200},
-                  "particles": {"every": 0.3, "max_count": 50}, "fields": {"every": 0.5}},
+                  "particles": {"every": 0.3, "max_count": 50}, "fields": {"every": 0.5},
+                  "collisions": {"every": 0.1, "radius": 0.3, "units": "box", "cross": True},
+                  "lagrangian": {"every": 0.05, "max_lag": 0.3, "count": 40}},
         "checkpoint": {"every": 0.25, "keep": 3}}
 
 FLUID_ONLY = {"name": "resilient-fluid", "seed": 2, "grid": {"points": 16},

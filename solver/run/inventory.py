@@ -148,7 +148,8 @@ def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
 
 #: the config key to lower for each item of the inventory
 _KEYS = {"particles": "particles.sets[{set}].count", "particle_seeding": "particles.sets[{set}].count",
-         "pair_histograms": "stats.pairs.bins"}
+         "pair_histograms": "stats.pairs.bins", "lagrangian_history": "stats.lagrangian.count",
+         "collision_detection": "particles.sets[{set}].count"}
 
 
 def memory_needed(cfg, ranks: int = 1, layout: str = "serial", threads: int = 1) -> dict:

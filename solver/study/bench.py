@@ -12,6 +12,9 @@ Sections (each a function returning a dict of named figures):
              today's kernel and the interleaved copies; and one step of 10^6 particles
              (order 8, tau_p = 0.05) against the 128^3 fluid step of the same run
   pairs      pair statistics against a cKDTree + numpy pipeline (eddybox.solver.study.bench_pairs)
+  collisions one step of collision detection against one pair-statistics sample of the same
+             particles, and the Lagrangian statistics' memory per particle
+             (eddybox.solver.study.bench_collisions)
   scaling    strong scaling over MPI ranks and bytes moved by the transposes
   estimate   accuracy of `eddybox estimate` against measured runs
 """
@@ -248,6 +251,16 @@ def bench_pairs_section(quick=False):
     from eddybox.solver.study.bench_pairs import bench_pairs
 
     return bench_pairs(n_particles=10**5 if quick else 10**6, repeats=2 if quick else 1)
+
+
+@register("collisions")
+def bench_collisions_section(quick=False):
+    from eddybox.solver.study.bench_collisions import bench_collisions, bench_lagrangian_memory
+
+    out = bench_collisions(n_particles=2 * 10**4 if quick else 10**5,
+                           repeats=3 if quick else 5)
+    out.update(bench_lagrangian_memory(particles=2000, lags=20 if quick else 100))
+    return out
 
 
 def run_bench(quick=False, json_path=None, sections=None) -> int:
