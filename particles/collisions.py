@@ -34,7 +34,7 @@ import numpy as np
 
 from eddybox.particles import migration
 from eddybox.particles import pairs as pairs_kernel
-from eddybox.particles.hooks import _finite, _LazyFileHook
+from eddybox.particles.hooks import PAIR_COLUMNS, _finite, _LazyFileHook
 from eddybox.solver.errors import ConfigError, NumericalInstability
 from eddybox.solver.estimators import pairs as pair_estimators
 from eddybox.solver.run.hooks import state_key, state_path
@@ -66,8 +66,8 @@ COLUMNS = {
                    np.int64),
     "kernel": ("L^3 T^-1", "detected collision kernel N_c V / (pairs interval), pairs = N_a N_b "
                "(two sets) or N (N - 1) / 2 (one set)", np.float64),
-    "eta": ("L", "Kolmogorov length (nu^3/eps)^(1/4) at the sample", np.float64),
-    "tau_eta": ("T", "Kolmogorov time (nu/eps)^(1/2) at the sample", np.float64),
+    "eta": PAIR_COLUMNS["eta"],
+    "tau_eta": PAIR_COLUMNS["tau_eta"],
     "radius_eta": ("1", "R / eta at the sample", np.float64),
     "shell_counts": ("1", "pairs in the shell R(1 - shell) <= r < R(1 + shell) at the sample",
                      np.int64),

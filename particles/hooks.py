@@ -223,6 +223,11 @@ class ParticleHook(_LazyFileHook):
         if "schedule" in lag:
             self.lag.load_state(lag["schedule"])
         self._pending_correlators = {k: v for k, v in lag.items() if k != "schedule"}
+        for name, c in self._pending_correlators.items():  # checked before anything is written
+            if self.lag_cfg is None or self.lag_cfg.every is None or \
+                    np.shape(c["v"])[0] != self.lag_cfg.lags() + 1:
+                raise ValueError(f"the Lagrangian history of set {name!r} does not match "
+                                 "stats.lagrangian")
 
     def open(self, sim, resume_samples=None):
         # the correlators of a restart: their history as the checkpoint holds it

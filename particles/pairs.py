@@ -146,6 +146,24 @@ def _min_image(d, box, half):
     return d + box if d < -half else d
 
 
+@njit(cache=True, inline="always")
+def _tile_distances(xb, yb, zb, jt, je, xi, yi, zi, min_image, box, half, r2buf):
+    """Squared distances from (xi, yi, zi) to the partners [jt, je) into r2buf[0:je - jt]: a
+    branch-free loop the compiler vectorises (the minimum image per component when asked)."""
+    if min_image:
+        for j in range(jt, je):
+            dx = _min_image(xb[j] - xi, box, half)
+            dy = _min_image(yb[j] - yi, box, half)
+            dz = _min_image(zb[j] - zi, box, half)
+            r2buf[j - jt] = dx * dx + dy * dy + dz * dz
+    else:
+        for j in range(jt, je):
+            dx = xb[j] - xi
+            dy = yb[j] - yi
+            dz = zb[j] - zi
+            r2buf[j - jt] = dx * dx + dy * dy + dz * dz
+
+
 @njit(cache=True)
 def _settle_row(x, edges, e0, nb, m):
     """The bin m of x (edges[e0 + m] <= x < edges[e0 + m + 1], clamped to the first and last of
@@ -216,18 +234,7 @@ def _block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo, hi, pr
         js = i + 1 if triangular else j0
         for jt in range(js, j1, _TILE):
             je = min(jt + _TILE, j1)
-            if min_image:
-                for j in range(jt, je):
-                    dx = _min_image(xb[j] - xi, box, half)
-                    dy = _min_image(yb[j] - yi, box, half)
-                    dz = _min_image(zb[j] - zi, box, half)
-                    r2buf[j - jt] = dx * dx + dy * dy + dz * dz
-            else:
-                for j in range(jt, je):
-                    dx = xb[j] - xi
-                    dy = yb[j] - yi
-                    dz = zb[j] - zi
-                    r2buf[j - jt] = dx * dx + dy * dy + dz * dz
+            _tile_distances(xb, yb, zb, jt, je, xi, yi, zi, min_image, box, half, r2buf)
             nacc = 0
             for q in range(je - jt):
                 r2 = r2buf[q]
@@ -432,18 +439,7 @@ def _contact_block(sa, i0, i1, sb, j0, j1, triangular, min_image, sx, sy, sz, lo
         wi = wa[i]
         for jt in range(i + 1 if triangular else j0, j1, _TILE):
             je = min(jt + _TILE, j1)
-            if min_image:
-                for j in range(jt, je):
-                    dx = _min_image(xb[j] - xi, box, half)
-                    dy = _min_image(yb[j] - yi, box, half)
-                    dz = _min_image(zb[j] - zi, box, half)
-                    r2buf[j - jt] = dx * dx + dy * dy + dz * dz
-            else:
-                for j in range(jt, je):
-                    dx = xb[j] - xi
-                    dy = yb[j] - yi
-                    dz = zb[j] - zi
-                    r2buf[j - jt] = dx * dx + dy * dy + dz * dz
+            _tile_distances(xb, yb, zb, jt, je, xi, yi, zi, min_image, box, half, r2buf)
             nacc = 0
             for q in range(je - jt):
                 jbuf[nacc] = q

@@ -427,12 +427,9 @@ def _cross_checks(c: RunConfig):
         if pr.units == "box" and pr.r_max >= 0.5 * c.grid.length:
             raise ConfigError(f"stats.pairs.r_max: {pr.r_max} must be below half the box "
                               f"({0.5 * c.grid.length:.6g}) with units: box")
-        if pr.start != "auto" and pr.start >= c.time.end:
-            raise ConfigError(f"stats.pairs.start: {pr.start:g} is not before time.end "
-                              f"{c.time.end:g}; no sample would be averaged")
+        _start_before_end("stats.pairs.start", pr.start, c.time.end)
         # a flow at rest has no dissipation, hence no eta: for ever, or at a release at t = 0
-        still = c.fluid.initial.kind == "rest" and (
-            c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
+        still = _stays_at_rest(c)
         if pr.units == "eta" and c.fluid.initial.kind == "rest" and (still or p.release == 0.0):
             why = "stays at rest" if still else "is at rest at the release (t = 0)"
             raise ConfigError(f"stats.pairs.units: 'eta' needs the Kolmogorov length, but the "
@@ -443,9 +440,20 @@ def _cross_checks(c: RunConfig):
     if lg.every is not None:
         if not p.sets:
             raise ConfigError("stats.lagrangian.every: Lagrangian statistics need particles.sets")
-        if lg.start != "auto" and lg.start >= c.time.end:
-            raise ConfigError(f"stats.lagrangian.start: {lg.start:g} is not before time.end "
-                              f"{c.time.end:g}; no sample would be averaged")
+        _start_before_end("stats.lagrangian.start", lg.start, c.time.end)
+
+
+def _start_before_end(key, start, end):
+    if start != "auto" and start >= end:
+        raise ConfigError(f"{key}: {start:g} is not before time.end {end:g}; no sample would be "
+                          "averaged")
+
+
+def _stays_at_rest(c: RunConfig) -> bool:
+    """The flow starts at rest and nothing sets it moving (frozen, or a forcing that does not
+    move a fluid at rest)."""
+    return c.fluid.initial.kind == "rest" and (
+        c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
 
 
 def _collision_checks(c: RunConfig):
@@ -466,13 +474,9 @@ def _collision_checks(c: RunConfig):
     elif col.units == "box" and col.radius >= 0.25 * c.grid.length:
         raise ConfigError(f"stats.collisions.radius: {col.radius:g} must be below a quarter of "
                           f"the box ({0.25 * c.grid.length:.6g}) with units: box")
-    if col.start != "auto" and col.start >= c.time.end:
-        raise ConfigError(f"stats.collisions.start: {col.start:g} is not before time.end "
-                          f"{c.time.end:g}; no sample would be averaged")
-    still = c.fluid.initial.kind == "rest" and (
-        c.fluid.frozen or not FORCINGS[c.forcing.kind].moves_fluid_at_rest)
+    _start_before_end("stats.collisions.start", col.start, c.time.end)
     if (col.radius is not None and col.units == "eta" and c.fluid.initial.kind == "rest"
-            and (still or p.release == 0.0)):
+            and (_stays_at_rest(c) or p.release == 0.0)):
         raise ConfigError("stats.collisions.units: 'eta' needs the Kolmogorov length at the "
                           "release, but the flow is at rest there and has no dissipation; use "
                           "units: box, or release the particles later (particles.release)")

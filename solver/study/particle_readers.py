@@ -48,6 +48,17 @@ def _file(run_dir, name) -> Path:
     return p / name if p.is_dir() else p
 
 
+def _run_files(run_dirs, names, filename):
+    """(run name, run folder, path) of every run that has ``filename``; names default to the
+    folder names."""
+    run_dirs = list(run_dirs)
+    names = list(names) if names is not None else [Path(d).name for d in run_dirs]
+    for name, d in zip(names, run_dirs):
+        path = _file(d, filename)
+        if path.is_file():
+            yield name, d, path
+
+
 # --- detected collisions ----------------------------------------------------------------------
 def read_collision_group(path, group: str) -> dict:
     """One /collisions/<group> of collisions.h5: its datasets truncated to the samples all of
@@ -87,9 +98,10 @@ def collision_window(series: dict, t_min: float | None = None) -> est.Window:
 
 def collision_average(series: dict, t_min: float | None = None) -> dict:
     """Pooled averages of one group over its window, each with ``_err``: ``detected`` Γ,
-    ``kinematic`` K(R), their ``ratio``, both over R³/τ_η (``*_norm``), g(R) and ⟨|w_r|⟩(R)
-    from the shell, and, in Kolmogorov units per sample, the numbers the physical values are
-    made from (``*_kolmogorov``)."""
+    ``kinematic`` K(R) = 2πR²g⟨|w_r|⟩ and ``kinematic_inward`` 4πR²g⟨w_r⁻⟩ (the inward flux;
+    the two agree when ⟨w_r⟩ = 0, i.e. once g(R) is stationary), the ``ratio`` Γ/K, both
+    over R³/τ_η (``*_norm``), g(R) and ⟨|w_r|⟩(R) from the shell, and, in Kolmogorov units
+    per sample, the numbers the physical values are made from (``*_kolmogorov``)."""
     a = series["attrs"]
     window = collision_window(series, t_min)
     keep = window.mask(series["time"])
@@ -111,6 +123,9 @@ def collision_average(series: dict, t_min: float | None = None) -> dict:
 
     det = put("detected", est.ratio_estimate(s["collisions"], exposure))
     put("kinematic", est.ratio_estimate(sum_kernel, s["shell_expected"]))
+    # the inward-flux form 4πR² g ⟨w_r⁻⟩: what ghost contacts count, equal to K when ⟨w_r⟩ = 0
+    put("kinematic_inward", est.ratio_estimate(4.0 * math.pi * r * r * s["shell_sum_inward"],
+                                               s["shell_expected"]))
     put("ratio", est.quotient_estimate(s["collisions"], exposure, sum_kernel, s["shell_expected"]))
     with np.errstate(invalid="ignore"):
         put("detected_norm", est.ratio_estimate(s["collisions"] * norm, exposure))
@@ -134,7 +149,8 @@ def collision_average(series: dict, t_min: float | None = None) -> dict:
 COLLISION_COLUMNS = {
     "run": "", "set_a": "", "set_b": "", "stokes_a": "1", "stokes_b": "1", "radius": "L",
     "radius_eta": "1", "detected": "L^3 T^-1", "detected_err": "L^3 T^-1",
-    "kinematic": "L^3 T^-1", "kinematic_err": "L^3 T^-1", "ratio": "1", "ratio_err": "1",
+    "kinematic": "L^3 T^-1", "kinematic_err": "L^3 T^-1", "kinematic_inward": "L^3 T^-1",
+    "kinematic_inward_err": "L^3 T^-1", "ratio": "1", "ratio_err": "1",
     "detected_norm": "1", "detected_norm_err": "1", "kinematic_norm": "1",
     "kinematic_norm_err": "1", "saffman_turner_norm": "1", "g_contact": "1",
     "g_contact_err": "1", "wr_abs": "L T^-1", "wr_abs_err": "L T^-1", "collisions": "1",
@@ -167,12 +183,7 @@ def collision_table(run_dirs, names=None, t_min: float | None = None) -> PairTab
     sets given by radius and density (kernels in m³/s, the collision rate per unit volume in
     m⁻³ s⁻¹, ⟨|w_r|⟩ at contact in m/s). Runs without collisions.h5 add no rows."""
     cols = {k: [] for k in COLLISION_COLUMNS}
-    run_dirs = list(run_dirs)
-    names = list(names) if names is not None else [Path(d).name for d in run_dirs]
-    for name, d in zip(names, run_dirs):
-        path = _file(d, "collisions.h5")
-        if not path.is_file():
-            continue
+    for name, d, path in _run_files(run_dirs, names, "collisions.h5"):
         try:
             groups = [read_collision_group(path, g) for g in collision_groups(path)]
         except (OSError, RuntimeError, KeyError, ValueError, TypeError) as exc:
@@ -278,12 +289,7 @@ def set_table(run_dirs, names=None) -> PairTable:
     settling velocity in m/s (divided by the simulation's u_η sample by sample), u′ in m/s and
     T_L in s (through the window's mean Kolmogorov scales)."""
     cols = {k: [] for k in SET_COLUMNS}
-    run_dirs = list(run_dirs)
-    names = list(names) if names is not None else [Path(d).name for d in run_dirs]
-    for name, d in zip(names, run_dirs):
-        path = _file(d, "particles.h5")
-        if not path.is_file():
-            continue
+    for name, d, path in _run_files(run_dirs, names, "particles.h5"):
         fluid = _fluid_kolmogorov(d)
         with open_output(path) as f:
             sets = {k: ({a: _text(v) for a, v in g.attrs.items()},

@@ -29,8 +29,10 @@ COLLISIONS_NOTE = (
     "set N(N−1)/2 pairs. Beside it the kinematic kernel at the same R, K = 2πR²g(R)⟨|w<sub>r"
     "</sub>|⟩(R) (Wang, Wexler &amp; Zhou 2000), measured in the shell R(1 ± δ) at each sample, "
     "and both over R³/τ<sub>η</sub> (sample by sample) against Saffman &amp; Turner's (1956) "
-    f"√(8π/15) = {SAFFMAN_TURNER:.4f} for tracers. Pooled ratios of sums over the window, "
-    "delta-method errors with blocking; the ratio Γ/K keeps their correlation.")
+    f"√(8π/15) = {SAFFMAN_TURNER:.4f} for tracers. Ghost contacts count the inward flux "
+    "4πR²g⟨w<sub>r</sub><sup>−</sup>⟩, which equals K once g(R) is stationary (⟨w<sub>r</sub>"
+    "⟩ = 0); while clustering still grows it is the larger. Pooled ratios of sums over the "
+    "window, delta-method errors with blocking; the ratio Γ/K keeps their correlation.")
 
 LAGRANGIAN_NOTE = (
     "Velocity autocorrelation R<sub>L</sub>(τ) = ⟨u′(t)·u′(t+τ)⟩/⟨|u′|²⟩ and the dispersion "
@@ -73,12 +75,14 @@ def _collision_section(table, out, figure, colours) -> list[str]:
         rows.append([_text(c["run"][i]), _text(f"{c['set_a'][i]} × {c['set_b'][i]}"),
                      _pm(c["radius_eta"][i], None, 3), _pm(c["detected"][i], c["detected_err"][i]),
                      _pm(c["kinematic"][i], c["kinematic_err"][i]),
+                     _pm(c["kinematic_inward"][i], c["kinematic_inward_err"][i]),
                      _pm(c["ratio"][i], c["ratio_err"][i]),
                      _pm(c["detected_norm"][i], c["detected_norm_err"][i]),
                      _pm(c["kinematic_norm"][i], c["kinematic_norm_err"][i]),
                      _pm(c["g_contact"][i], c["g_contact_err"][i]),
                      f"<td>{int(c['collisions'][i])}</td>", _text(c["window"][i])])
-    head = ["run", "sets", "R/η", "detected Γ [L³T⁻¹]", "kinematic K(R) [L³T⁻¹]", "Γ/K",
+    head = ["run", "sets", "R/η", "detected Γ [L³T⁻¹]", "kinematic K(R) [L³T⁻¹]",
+            "4πR²g⟨w<sub>r</sub><sup>−</sup>⟩ [L³T⁻¹]", "Γ/K",
             "Γτ<sub>η</sub>/R³", "Kτ<sub>η</sub>/R³", "g(R)", "contacts", "window"]
     fig = figure(max(6.0, 1.2 * len(table) + 3.0), 4.6)
     ax = fig.subplots()
