@@ -100,6 +100,17 @@ def test_inspect_and_reader_use_the_recorded_window(auto_run, capsys):
     assert f"averaging window: t >= {s.recorded_start:.6g} (auto" in text
 
 
+def test_inspect_summarises_detected_collisions(auto_run, capsys):
+    # the pooled detected kernel beside the kinematic one, as the reader gives them
+    from eddybox.solver.study.particle_readers import collision_average, read_collision_group
+
+    assert main(["inspect", auto_run]) == 0
+    text = capsys.readouterr().out
+    avg = collision_average(read_collision_group(auto_run + "/collisions.h5", "light__tracers"))
+    assert "collisions light__tracers" in text and f"{avg['detected']:.4g}" in text
+    assert f"{avg['collisions']} contacts" in text
+
+
 def test_every_group_opens_in_xarray(auto_run):
     # netCDF-4 readers need a dimension scale on every axis of every dataset (xarray, h5netcdf)
     xr = pytest.importorskip("xarray")

@@ -96,9 +96,11 @@ def _collisions_summary(path):
             continue
         lines.append(f"    averaging window: {avg['window'].describe()}, {avg['samples']} samples, "
                      f"{avg['collisions']} contacts, R = {avg['radius_eta']:.3g} eta")
-        lines.append(f"    detected {_pm(avg['detected'], avg['detected_err'])}  kinematic at R "
-                     f"{_pm(avg['kinematic'], avg['kinematic_err'])}  ratio "
-                     f"{_pm(avg['ratio'], avg['ratio_err'])}  (L^3 T^-1)")
+        lines.append(f"    kernels (L^3 T^-1): detected {_pm(avg['detected'], avg['detected_err'])}"
+                     f" kinematic at R {_pm(avg['kinematic'], avg['kinematic_err'])} inward flux "
+                     f"{_pm(avg['kinematic_inward'], avg['kinematic_inward_err'])}")
+        lines.append(f"    detected / kinematic {_pm(avg['ratio'], avg['ratio_err'])}, g(R) "
+                     f"{_pm(avg['g_contact'], avg['g_contact_err'])}")
     return lines
 
 
