@@ -335,7 +335,9 @@ class ParticleSystem:
     def unwrapped_sample(self, s, max_count):
         """Velocities and unwrapped positions x + image L of the first `max_count` particles
         of set s by id, in id order (rank 0; None elsewhere). Collective."""
-        g = self.snapshot(s, max_count)
+        mine = (s.ids - s.first_id) < max_count
+        g = migration.gather_by_id(self.layout, s.ids[mine],
+                                   {"x": s.x[mine], "v": s.v[mine], "image": s.image[mine]})
         if g is None:
             return None
         return {"ids": g["ids"], "v": g["v"], "x": g["x"] + self.length * g["image"]}

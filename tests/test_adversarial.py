@@ -354,6 +354,7 @@ REFUSALS = [
         {"particles": {"sets": [{"name": "drops", "stokes": 1.0, "count": 10**7}]},
          "stats": {"lagrangian": {"every": 0.001, "max_lag": 10.0, "count": 10**7}}}),
      "stats.lagrangian.count"),
+    ("bench-unknown-section", lambda c, mp: ["bench", "--section", "nope"], "--section"),
     ("overwrite-length-1e300", _validate_first({"grid": {"length": 1e300}}), "grid.length"),
     ("overwrite-length-1e-300", _validate_first({"grid": {"length": 1e-300}}), "grid.length"),
     ("max-memory-too-small-for-grid", lambda c, mp: ["check", c.config({"grid": {"points": 512}}),
