@@ -93,6 +93,9 @@ def _parser():
     b = sub.add_parser("bench", help="measure performance ratios on this machine")
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
     b.add_argument("--json", help="also write the figures to this JSON file")
+    b.add_argument("--section", action="append", default=None, metavar="NAME",
+                   help="run only this section (repeatable): fluid, resolution, particles, "
+                        "pairs, scaling, estimate")
 
     for name, mod in _EXTRA.items():
         mod_parser = sub.add_parser(name, help=mod[0])
@@ -304,7 +307,13 @@ def cmd_schema(args, comm=None):
 def cmd_bench(args, comm=None):
     from eddybox.solver.study.bench import run_bench
 
-    return run_bench(quick=args.quick, json_path=args.json)
+    from eddybox.solver.study.bench import BENCHES
+
+    unknown = [s for s in args.section or () if s not in BENCHES]
+    if unknown:
+        raise ConfigError(f"--section: {unknown[0]!r} is not a bench section; choose from "
+                          + ", ".join(BENCHES))
+    return run_bench(quick=args.quick, json_path=args.json, sections=args.section)
 
 
 def cmd_sweep(args, comm=None):

@@ -31,6 +31,7 @@ from eddybox.solver.study.calibration import (
     best_times,
     calibrate,
     calibration_path,
+    load_calibration,
     measure_fluid_points,
     peak_rss_bytes,
     save_calibration,
@@ -164,13 +165,13 @@ def bench_resolution(quick=False, kmax_eta=1.5, eps=0.1):
         sims[name].advance()
         out[f"points_{name}"] = n
         out[f"kmax_eta_{name}"] = method.kmax_index(n) * eta
-        cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}}).data
+        cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}})
         out[f"bytes_per_resolved_mode_{name}"] = (sum(predicted_inventory(cfg).values())
                                                   / method.kept_modes(n))
     t = best_times({k: s.advance for k, s in sims.items()}, 2 if quick else 3)
     pred = scales.predicted(validate({"grid": {"points": n_ref}, "fluid": {"viscosity": nu},
                                       "forcing": {"kind": "ou", "band": 2.0,
-                                                  "dissipation": eps}}).data)
+                                                  "dissipation": eps}}))
     u = pred["u_rms_estimate"]
     turnover = scales.INTEGRAL_OVER_FORCING_WAVELENGTH * 2 * np.pi / 2.0 / u  # L/u', band 2
     dt = 0.6 * (2 * np.pi / n_ref) / (6.0 * u)  # the default time.cfl, U_max = 6 u'
@@ -278,6 +279,11 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
             cal["particle_seconds"] = particle_seconds(cal, part)
         if results.get("pairs", {}).get("pairs_per_second"):
             cal["pair_seconds"] = 1.0 / results["pairs"]["pairs_per_second"]
+        # figures of sections not run this time: kept from the calibration they replace
+        old = load_calibration() or {}
+        for k in ("interp_seconds_per_particle", "particle_seconds", "pair_seconds"):
+            if k not in cal and k in old:
+                cal[k] = old[k]
         save_calibration(cal)
         print(f"cost-model calibration written to {calibration_path()} (used by eddybox check "
               "and estimate)")
@@ -363,7 +369,9 @@ def bench_estimate(quick=False):
     from eddybox.solver.study.calibration import BENCH_SIZES, QUICK_BENCH_SIZES, peak_run_config
 
     cal_sizes = QUICK_BENCH_SIZES if quick else BENCH_SIZES
-    cal = calibrate(cal_sizes, save=False)
+    # the calibration sizes and the two predicted ones timed side by side, interleaved
+    measured = {p["n"]: p for p in measure_fluid_points(cal_sizes + (96, 128), repeats=5)}
+    cal = calibrate(cal_sizes, save=False, points=[measured[n] for n in cal_sizes])
     _LAST_CALIBRATION.clear()
     _LAST_CALIBRATION.update(cal)
     out = {"calibration_sizes": list(cal_sizes), "fluid_model_a": cal["fluid_model"]["a"],
@@ -371,18 +379,18 @@ def bench_estimate(quick=False):
            "process_bytes": cal["memory_overhead_bytes"]}
     t_err, m_err = [], []
     for n in (96, 128):
-        measured = measure_fluid_points((n,))[0]["step_seconds"]
+        step = measured[n]["step_seconds"]
         predicted, _ = est.step_time(cal, n, 1, "rk4")
         mem_measured = peak_rss_bytes(n, "rk4")
         mem_predicted = sum(memory_needed(validate(peak_run_config(n)),
                                           process_bytes=cal["memory_overhead_bytes"]).values())
-        out[f"step_seconds_measured_{n}"] = measured
+        out[f"step_seconds_measured_{n}"] = step
         out[f"step_seconds_predicted_{n}"] = predicted
-        out[f"step_predicted_over_measured_{n}"] = predicted / measured
+        out[f"step_predicted_over_measured_{n}"] = predicted / step
         out[f"peak_memory_measured_{n}"] = mem_measured
         out[f"peak_memory_predicted_{n}"] = mem_predicted
         out[f"peak_memory_predicted_over_measured_{n}"] = mem_predicted / mem_measured
-        t_err.append(abs(predicted / measured - 1))
+        t_err.append(abs(predicted / step - 1))
         m_err.append(abs(mem_predicted / mem_measured - 1))
     out["estimate_time_error"] = max(t_err)
     out["estimate_memory_error"] = max(m_err)

@@ -199,33 +199,39 @@ def fit_fluid_model(points):
 
 def measure_fluid_points(sizes=QUICK_SIZES, scheme="rk4", repeats=3):
     """Measured serial step times, the time of their transforms alone, and U_max/u', at
-    several sizes (each in a temporary folder, removed afterwards)."""
+    several sizes, timed interleaved (a change in the machine's load affects every size alike);
+    each simulation in a temporary folder, removed afterwards."""
     import shutil
     import tempfile
 
-    pts = []
-    for n in sizes:
-        out = tempfile.mkdtemp(prefix="eddybox-calibrate-")
-        try:
-            sim = benchmark_simulation(n, scheme, out=out + "/run")
-            try:
-                sim.advance()  # compile kernels, warm caches
-                t = best_times({"step": sim.advance, "fft": transform_floor(sim)}, repeats)
-                u_rms = math.sqrt(2 * sim.energy() / 3)
-                pts.append({"n": n, "scheme": scheme, "step_seconds": t["step"],
-                            "fft_seconds": t["fft"],
-                            "umax_over_urms": sim.nl.umax / u_rms if u_rms > 0 else 6.0})
-            finally:
-                sim.close()
-        finally:
-            shutil.rmtree(out, ignore_errors=True)
-    return pts
+    out = tempfile.mkdtemp(prefix="eddybox-calibrate-")
+    sims = {}
+    try:
+        timed = {}
+        for n in sizes:
+            sims[n] = benchmark_simulation(n, scheme, out=f"{out}/{n}")
+            sims[n].advance()  # compile kernels, warm caches
+            timed[("step", n)], timed[("fft", n)] = sims[n].advance, transform_floor(sims[n])
+        t = best_times(timed, repeats)
+        pts = []
+        for n, sim in sims.items():
+            u_rms = math.sqrt(2 * sim.energy() / 3)
+            pts.append({"n": n, "scheme": scheme, "step_seconds": t[("step", n)],
+                        "fft_seconds": t[("fft", n)],
+                        "umax_over_urms": sim.nl.umax / u_rms if u_rms > 0 else 6.0})
+        return pts
+    finally:
+        for sim in sims.values():
+            sim.close()
+        shutil.rmtree(out, ignore_errors=True)
 
 
-def calibrate(sizes=BENCH_SIZES, save=True, extra=None, memory=True, repeats=3, source=None):
-    """Measure this machine (step times at `sizes`; with `memory`, the memory of eddybox
-    itself) and, with `save`, store the calibration in the user cache directory."""
-    pts = measure_fluid_points(sizes, repeats=repeats)
+def calibrate(sizes=BENCH_SIZES, save=True, extra=None, memory=True, repeats=3, source=None,
+              points=None):
+    """Measure this machine (step times at `sizes`, or the given measured `points`; with
+    `memory`, the memory of eddybox itself) and, with `save`, store the calibration in the
+    user cache directory."""
+    pts = points or measure_fluid_points(sizes, repeats=repeats)
     cal = {"created": time.strftime("%Y-%m-%dT%H:%M:%S"), "threads": thread_count(),
            "sizes": list(sizes), "source": source or f"measured at {_sizes_text(sizes)}",
            "fluid_points": pts, "fluid_model": fit_fluid_model(pts),

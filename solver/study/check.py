@@ -83,7 +83,7 @@ def plan_lines(cfg) -> list[str]:
 
     try:
         cal, how = machine_calibration()
-    except CalibrationError as exc:
+    except (CalibrationError, OSError) as exc:  # a busy machine; no room for the short runs
         return ["", f"plan: not available ({exc})"]
     e = estimate(cfg, cfg.grid.points, 1, cal=cal)
     out = ["", f"plan on this machine (one process, {e['threads_per_rank']} thread(s)):"]

@@ -205,35 +205,38 @@ def target_viscosity(cfg, points=None, kmax_eta=None, re_lambda=None):
     if kmax_eta is None and re_lambda is None:
         return cfg, points, None
     if points is not None:
-        sized = _with_viscosity(cfg.with_changes({"grid.points": points}), None)
+        try:
+            sized = cfg.with_changes({"grid.points": points})
+        except ConfigError as exc:
+            raise ConfigError(f"--points: {exc}") from None
         if re_lambda is not None:
             nu = scales.viscosity_for_re_lambda(sized, re_lambda)
             note = f"fluid.viscosity {nu:.4g} for Re_lambda = {re_lambda:g} (k_max eta follows)"
+            option = "--re-lambda"
         else:
             nu = scales.viscosity_for_kmax_eta(sized, kmax_eta)
             note = f"fluid.viscosity {nu:.4g} for k_max eta = {kmax_eta:g} at N = {points}"
-        return _with_viscosity(cfg, nu), points, note
+            option = "--kmax-eta"
+        return _with_viscosity(cfg, nu, option), points, note
     nu = scales.viscosity_for_re_lambda(cfg, re_lambda)
     held = kmax_eta is None
     if held:
         kmax_eta = scales.predicted(cfg)["kmax_eta"]
-    new = _with_viscosity(cfg, nu)
+    new = _with_viscosity(cfg, nu, "--re-lambda")
     eta = scales.predicted(new)["eta"]
     from eddybox.solver.run.config_warnings import points_for_kmax
 
-    n = fft_friendly(points_for_kmax(new, kmax_eta / eta))
+    n = fft_friendly(points_for_kmax(new, kmax_eta / eta), "--re-lambda")
     return new, n, (f"fluid.viscosity {nu:.4g} for Re_lambda = {re_lambda:g}; N = {n}, the "
                     f"smallest FFT-friendly size with k_max eta >= {kmax_eta:.3g}"
                     + (" (the config's own)" if held else ""))
 
 
-def _with_viscosity(cfg, nu):
-    if nu is None:
-        return cfg
+def _with_viscosity(cfg, nu, option):
     try:
         return cfg.with_changes({"fluid.viscosity": float(nu)})
     except ConfigError as exc:
-        raise ConfigError(f"--kmax-eta/--re-lambda: the viscosity they need is out of range: {exc}") from None
+        raise ConfigError(f"{option}: the viscosity it needs is out of range: {exc}") from None
 
 
 def print_estimate(args):
@@ -395,9 +398,15 @@ def dealias_costs(dealias, n):
             method.axis_index(n))
 
 
-def fft_friendly(n_min: float) -> int:
+def fft_friendly(n_min: float, option="--kmax-eta") -> int:
     """The smallest even N >= n_min whose only prime factors are 2, 3, 5 and 7 (sizes the
-    FFT libraries handle fastest)."""
+    FFT libraries handle fastest); ConfigError naming `option` beyond grid.points' limit."""
+    from eddybox.solver.run.config import GridConfig
+
+    limit = GridConfig.points.hi
+    if not n_min <= limit:
+        raise ConfigError(f"{option}: needs N >= {n_min:.4g}, beyond the largest grid.points "
+                          f"({limit:g})")
     n = max(4, int(math.ceil(n_min)))
     while True:
         if n % 2 == 0:
