@@ -114,7 +114,9 @@ def plan_job(config_path, out, name, estimate: dict, cores_per_node: int, margin
              f"{nodes} node(s) of {cores_per_node} cores",
              f"estimate: {estimate['steps']} steps x {estimate['seconds_per_step']:.4g} s = "
              f"{estimate['wall_seconds'] / 3600:.3g} h, {estimate['core_hours']:.4g} core-hours, "
-             f"{estimate['memory_per_rank'] / 2**30:.3g} GiB per rank",
+             f"{estimate['memory_per_rank'] / 2**30:.3g} GiB per rank at the peak"
+             + (f" (rank 0 {estimate['memory_rank0'] / 2**30:.3g} GiB)"
+                if estimate.get("memory_rank0", 0) > estimate["memory_per_rank"] else ""),
              f"job limit {hms(limit)} = estimate x {1 + margin:g} + 10 min"
              + (f", capped at {hms(max_walltime)}" if max_walltime and job_walltime is None else ""),
              f"time.walltime {int(limit - safety)} s = limit - {int(safety)} s (start-up, final "
