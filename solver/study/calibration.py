@@ -83,7 +83,12 @@ def benchmark_simulation(n, scheme="rk4", out=None, threads=None, dealias="two-t
     from eddybox.solver.run.config import validate
     from eddybox.solver.run.simulation import Simulation
 
-    out = out or tempfile.mkdtemp(prefix="eddybox-bench-")
+    if out is None:
+        import atexit
+        import shutil
+
+        out = tempfile.mkdtemp(prefix="eddybox-bench-")
+        atexit.register(shutil.rmtree, out, True)  # its own folder: gone when the process ends
     cfg = validate(benchmark_config(n, scheme, dealias, viscosity, particles, order, tau_p, out))
     sim = Simulation(cfg, overwrite=True, quiet=True)
     if not pruned:
