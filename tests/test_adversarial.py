@@ -403,6 +403,16 @@ REFUSALS = [
     ("estimate-calibration-not-a-mapping", _estimate(calibration="[1, 2, 3]"), "--calibration"),
     ("estimate-calibration-zero-velocity", _estimate(
         calibration='{"fluid_model": {"a": 3e-10, "b": 4e-9}, "umax_over_urms": 0}'), "--calibration"),
+    ("estimate-calibration-free-transforms", _estimate(
+        calibration='{"fluid_model": {"a": 0.0, "b": 4e-9}}'), "fluid_model.a"),
+    ("estimate-points-kmax-eta-and-re-lambda", _estimate("--kmax-eta", "1.5", "--re-lambda", "100"),
+     "give at most two"),
+    ("estimate-re-lambda-nan", _estimate("--re-lambda", "nan"), "--re-lambda"),
+    ("estimate-re-lambda-tiny", _estimate("--re-lambda", "1e-9"), "--re-lambda"),
+    ("estimate-kmax-eta-beyond-any-grid", lambda c, mp: _estimate()(c, mp)[:2] + [
+        "--ranks", "4", "--kmax-eta", "1e12", "--calibration", str(c.root / "good-cal.json")],
+     "--kmax-eta"),
+    ("bench-unknown-section", lambda c, mp: ["bench", "--section", "everything"], "--section"),
 ]
 
 
