@@ -59,13 +59,12 @@ def point_particle_warnings(name, num) -> list[str]:
     return w
 
 
-def particle_lines(p, predicted) -> tuple[list[str], list[str]]:
-    """Lines for `eddybox check` describing every particle set of the particles section `p`,
-    and warnings."""
+def particle_lines(p, predicted) -> list[str]:
+    """Lines for `eddybox check` describing every particle set of the particles section `p`
+    (its warnings: `point_particle_warnings`, gathered by eddybox.solver.run.config_warnings)."""
     if not p.sets:
-        return [], []
+        return []
     lines = ["", f"particles (released at t = {p.release:g}):"]
-    warn = []
     tau_eta = predicted.get("tau_eta")
     for s in p.sets:
         order = s.interpolation or p.interpolation
@@ -77,7 +76,6 @@ def particle_lines(p, predicted) -> tuple[list[str], list[str]]:
                 f"St = tau_p/tau_eta = {num['stokes']:.3g}, S_v = tau_p g/u_eta = "
                 f"{num['settling_parameter']:.3g}, Fr = a_eta/g = {num['froude']:.3g}, "
                 f"Re_p = d v_s/nu = {num['reynolds_p']:.3g}, d/eta = {num['diameter_over_eta']:.3g}")
-            warn += point_particle_warnings(s.name, num)
         elif s.stokes is not None:
             tp = f", tau_p ~ {s.stokes * tau_eta:.3g} with the predicted tau_eta" if tau_eta else ""
             kind = "tracers" if s.stokes == 0 else f"St = {s.stokes:g}{tp}"
@@ -87,7 +85,7 @@ def particle_lines(p, predicted) -> tuple[list[str], list[str]]:
             st = f", St ~ {s.tau_p / tau_eta:.3g}" if tau_eta and s.tau_p else ""
             lines.append(f"  {s.name:12s} {s.count:9d}  {kind}{st}")
         lines[-1] += f", interpolation {order} points"
-    return lines, warn
+    return lines
 
 
 def from_kolmogorov_units(value, length: int, time: int, eta: float, tau_eta: float):

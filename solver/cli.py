@@ -94,7 +94,8 @@ def _parser():
     b.add_argument("--quick", action="store_true", help="smaller sizes, a few minutes")
     b.add_argument("--json", help="also write the figures to this JSON file")
     b.add_argument("--section", action="append", default=None, metavar="NAME",
-                   help="run only this section (repeatable; an unknown name lists them)")
+                   help="run only this section (repeatable): fluid, resolution, particles, "
+                        "pairs, collisions, scaling, estimate")
 
     for name, mod in _EXTRA.items():
         mod_parser = sub.add_parser(name, help=mod[0])
@@ -127,10 +128,16 @@ def _add_estimate(sp):
                     help="override a config key")
     sp.add_argument("--points", type=int, default=None, help="grid points per direction N")
     sp.add_argument("--kmax-eta", type=float, default=None,
-                    help="instead of --points: compare the dealiasing options at this k_max eta "
-                         "and pick the cheapest")
+                    help="alone: compare the dealiasing options at this k_max eta and pick the "
+                         "cheapest N; with --points or --re-lambda: the viscosity (or N) that "
+                         "holds it")
+    sp.add_argument("--re-lambda", type=float, default=None,
+                    help="choose the viscosity for this Re_lambda at the forcing's dissipation; "
+                         "N follows from --points, or from k_max eta (--kmax-eta, default the "
+                         "config's own)")
     sp.add_argument("--ranks", type=int, required=True, help="MPI ranks P")
-    sp.add_argument("--particles", type=int, default=None, help="particles in total")
+    sp.add_argument("--particles", type=_count, default=None,
+                    help="particles in total (an integer; 1e7 is accepted)")
     sp.add_argument("--network-bandwidth", type=float, default=None, help="bytes/s per rank")
     sp.add_argument("--network-latency", type=float, default=None, help="seconds per message")
     sp.add_argument("--calibration", default=None, help="JSON written by eddybox bench")
@@ -147,6 +154,17 @@ def _add_estimate(sp):
                    "the one from the estimate")
     j.add_argument("--out", default=None, help="the run folder the job writes (default: the "
                    "config's output)")
+
+
+def _count(text) -> int:
+    """An integer count, also written as 1e7."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
+    if not value.is_integer():
+        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}")
+    return int(value)
 
 
 _EXTRA = {"sweep": ("one run per combination of varied keys", _add_sweep),
@@ -291,7 +309,7 @@ def cmd_bench(args, comm=None):
 
     from eddybox.solver.study.bench import BENCHES
 
-    unknown = [n for n in args.section or () if n not in BENCHES]
+    unknown = [s for s in args.section or () if s not in BENCHES]
     if unknown:
         raise ConfigError(f"--section: {unknown[0]!r} is not a bench section; choose from "
                           + ", ".join(BENCHES))
@@ -315,7 +333,7 @@ def cmd_report(args, comm=None):
 def cmd_estimate(args, comm=None):
     from eddybox.solver.study.estimate import print_estimate, print_resolution_options
 
-    if args.kmax_eta is not None:
+    if args.kmax_eta is not None and args.points is None and args.re_lambda is None:
         print_resolution_options(args)
     else:
         print_estimate(args)

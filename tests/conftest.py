@@ -1,9 +1,16 @@
 """Shared fixtures. Tests run the numba kernels and FFTs on one thread so that results are
 deterministic and MPI tests (several ranks on 2 cores) do not oversubscribe the machine."""
+import atexit
 import os
+import shutil
+import tempfile
 
 os.environ.setdefault("EDDYBOX_THREADS", "1")
 os.environ.setdefault("EDDYBOX_FFTW_EFFORT", "FFTW_ESTIMATE")
+# a cache of the session's own (FFTW wisdom, the cost-model calibration `check` measures): the
+# tests neither read the user's calibration nor write into the user's cache
+os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="eddybox-test-cache-")
+atexit.register(shutil.rmtree, os.environ["XDG_CACHE_HOME"], True)
 
 import pytest  # noqa: E402
 

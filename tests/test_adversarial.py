@@ -354,7 +354,6 @@ REFUSALS = [
         {"particles": {"sets": [{"name": "drops", "stokes": 1.0, "count": 10**7}]},
          "stats": {"lagrangian": {"every": 0.001, "max_lag": 10.0, "count": 10**7}}}),
      "stats.lagrangian.count"),
-    ("bench-unknown-section", lambda c, mp: ["bench", "--section", "nope"], "--section"),
     ("overwrite-length-1e300", _validate_first({"grid": {"length": 1e300}}), "grid.length"),
     ("overwrite-length-1e-300", _validate_first({"grid": {"length": 1e-300}}), "grid.length"),
     ("max-memory-too-small-for-grid", lambda c, mp: ["check", c.config({"grid": {"points": 512}}),
@@ -421,6 +420,16 @@ REFUSALS = [
     ("estimate-calibration-not-a-mapping", _estimate(calibration="[1, 2, 3]"), "--calibration"),
     ("estimate-calibration-zero-velocity", _estimate(
         calibration='{"fluid_model": {"a": 3e-10, "b": 4e-9}, "umax_over_urms": 0}'), "--calibration"),
+    ("estimate-calibration-free-transforms", _estimate(
+        calibration='{"fluid_model": {"a": 0.0, "b": 4e-9}}'), "fluid_model.a"),
+    ("estimate-points-kmax-eta-and-re-lambda", _estimate("--kmax-eta", "1.5", "--re-lambda", "100"),
+     "give at most two"),
+    ("estimate-re-lambda-nan", _estimate("--re-lambda", "nan"), "--re-lambda"),
+    ("estimate-re-lambda-tiny", _estimate("--re-lambda", "1e-9"), "--re-lambda"),
+    ("estimate-kmax-eta-beyond-any-grid", lambda c, mp: _estimate()(c, mp)[:2] + [
+        "--ranks", "4", "--kmax-eta", "1e12", "--calibration", str(c.root / "good-cal.json")],
+     "--kmax-eta"),
+    ("bench-unknown-section", lambda c, mp: ["bench", "--section", "everything"], "--section"),
 ]
 
 

@@ -52,6 +52,37 @@ def test_script_holds_the_estimate_and_passes_bash_n(config, tmp_path, capsys, k
     assert 0 < budget < limit  # time.walltime safely below the job's limit
     assert '-n 256 "$PYTHON" -m eddybox.solver.cli run' in text
     assert 'if [ "$code" -eq 75 ]; then' in text
+    assert "--set grid.points=512 " in text  # the job runs the size that was estimated
+
+
+def test_script_runs_the_config_the_estimate_was_made_for(tmp_path, capsys):
+    # --re-lambda and --particles change nu, N and the set counts: the job's --set arguments,
+    # read back as the run would read them, give the estimate's config
+    import shlex
+
+    from eddybox.solver.run import config as cfgmod
+
+    path = tmp_path / "prod.yaml"
+    path.write_text(yaml.safe_dump({
+        "name": "prod", "grid": {"points": 32}, "fluid": {"viscosity": 0.01},
+        "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}, "time": {"end": 20.0},
+        "particles": {"release": 1.0, "sets": [{"name": "st", "stokes": [0.5, 2], "count": 1000},
+                                               {"name": "tr", "tau_p": 0.0, "count": 2000}]}}))
+    cal = tmp_path / "cal.json"
+    cal.write_text(__import__("json").dumps(CAL))
+    script = tmp_path / "job.sh"
+    assert main(["estimate", str(path), "--re-lambda", "120", "--particles", "4e6", "--ranks", "64",
+                 "--calibration", str(cal), "--job-script", str(script)]) == 0
+    out = capsys.readouterr().out
+    n = int(re.search(r"at (\d+)\^3 on 64 rank", out).group(1))
+    nu = float(re.search(r"viscosity nu\s+(\S+)", out).group(1))
+    words = shlex.split(script.read_text().split("eddybox.solver.cli run")[1].split("--quiet")[0]
+                        .replace("\\\n", " "))
+    sets = [words[i + 1] for i, w in enumerate(words) if w == "--set" and "walltime" not in words[i + 1]]
+    cfg = cfgmod.load(str(path), sets)
+    assert cfg.grid.points == n and cfg.fluid.viscosity == pytest.approx(nu, rel=1e-3)
+    assert [s.count for s in cfg.particles.sets] == [1000000, 1000000, 2000000]
+    assert [s.name for s in cfg.particles.sets] == ["st0.5", "st2", "tr"]
 
 
 def test_plan_job_margin_and_caps():

@@ -12,15 +12,29 @@ from eddybox.solver.fluid.field_file import read_velocity_hat
 INITIAL_FIELDS: dict[str, callable] = {}
 #: config keys each kind accepts: name -> eddybox.solver.fields.Field
 INITIAL_PARAMS: dict[str, dict] = {}
+#: bytes of the short-lived arrays each builder allocates besides `uh` and the solver's own
+#: arrays (a start-up peak): name -> f(n, spec_points, phys_points) with the local block sizes
+#: (tests/test_estimate.py checks each against tracemalloc)
+INITIAL_TEMPORARY: dict[str, callable] = {}
 
 
-def register(name: str, **params):
+def register(name: str, temporary=lambda n, spec, phys: 0, **params):
     def deco(fn):
         INITIAL_FIELDS[name] = fn
         INITIAL_PARAMS[name] = params
+        INITIAL_TEMPORARY[name] = temporary
         return fn
 
     return deco
+
+
+def _spectrum_temporary(n, spec, phys):
+    """The peak of `spectrum`: each k_x plane drawn whole (3 x N x (N/2+1) pairs of normals, their
+    complex sum: 144 N (N/2+1) bytes), the Hermitian k_z = 0 plane (3 x N x N: 144 N^2 bytes
+    while it is symmetrised, 96 N^2 kept with the last plane until the end), and the amplitude
+    |k| and its three temporaries with a mask (33 bytes per local Fourier point)."""
+    plane = 48 * n * (n // 2 + 1)
+    return max(3 * plane, 144 * n * n + plane, 33 * spec + 96 * n * n + plane)
 
 
 def _coords(layout):
@@ -42,7 +56,8 @@ def rest(cfg, layout, nonlinear, seed, uh):
     uh[...] = 0.0
 
 
-@register("taylor-green", amplitude=Num(1.0, "amplitude U_0", "L T^-1", lo=-1e6, hi=1e6))
+@register("taylor-green", temporary=lambda n, spec, phys: 16 * phys + 8 * n * n,  # two components
+          amplitude=Num(1.0, "amplitude U_0", "L T^-1", lo=-1e6, hi=1e6))
 def taylor_green(cfg, layout, nonlinear, seed, uh):
     """Taylor & Green (1937), Proc. R. Soc. A 158: u = U0 (sin x cos y cos z,
     -cos x sin y cos z, 0), with x scaled by 2 pi / L. All modes sit at |k|^2 = 3 k0^2."""
@@ -54,7 +69,8 @@ def taylor_green(cfg, layout, nonlinear, seed, uh):
     _from_physical(layout, nonlinear, comps, uh)
 
 
-@register("abc", a=Num(1.0, "A", "L T^-1", lo=-1e6, hi=1e6), b=Num(1.0, "B", "L T^-1", lo=-1e6, hi=1e6),
+@register("abc", temporary=lambda n, spec, phys: 24 * n * n,  # three (1, N, N) sums, broadcast
+          a=Num(1.0, "A", "L T^-1", lo=-1e6, hi=1e6), b=Num(1.0, "B", "L T^-1", lo=-1e6, hi=1e6),
           c=Num(1.0, "C", "L T^-1", lo=-1e6, hi=1e6))
 def abc(cfg, layout, nonlinear, seed, uh):
     """Arnold-Beltrami-Childress flow (Dombre et al. 1986, J. Fluid Mech. 167):
@@ -69,7 +85,8 @@ def abc(cfg, layout, nonlinear, seed, uh):
     _from_physical(layout, nonlinear, [np.broadcast_to(v, layout.phys_shape) for v in comps], uh)
 
 
-@register("spectrum", energy=Num(0.5, "total kinetic energy E_0", "L^2 T^-2", lo=0.0, lo_open=True),
+@register("spectrum", temporary=_spectrum_temporary,
+          energy=Num(0.5, "total kinetic energy E_0", "L^2 T^-2", lo=0.0, lo_open=True),
           peak=Num(3.0, "peak wavenumber k_p", "2π/L", lo=0.0, lo_open=True, hi=1e6))
 def spectrum(cfg, layout, nonlinear, seed, uh):
     """Random solenoidal field with the model spectrum E(k) ~ k^4 exp(-2 (k/k_p)^2)
@@ -111,7 +128,9 @@ def spectrum(cfg, layout, nonlinear, seed, uh):
         uh *= np.sqrt(e0 / e)
 
 
-@register("file", path=Text(None, "field snapshot or checkpoint written by eddybox", none_ok=False))
+# every rank reads the file's global field and maps it to N: two global fields at once
+@register("file", temporary=lambda n, spec, phys: 2 * 48 * n * n * (n // 2 + 1),
+          path=Text(None, "field snapshot or checkpoint written by eddybox", none_ok=False))
 def from_file(cfg, layout, nonlinear, seed, uh):
     """Velocity from an eddybox field snapshot or checkpoint (dataset `velocity_hat`, global
     half-complex coefficients). A different N is handled by spectral truncation (coarser

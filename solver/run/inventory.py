@@ -40,6 +40,7 @@ def predicted_inventory(cfg, ranks: int = 1, layout: str = "serial",
     inv = {"velocity_hat": 3 * spec * COMPLEX,
            "scheme_work": 3 * scheme.extra_arrays * spec * COMPLEX,
            "fft_scratch": spec * COMPLEX,
+           "fft_real_buffer": phys * REAL,
            "physical_velocity": 3 * phys * REAL,
            "physical_vorticity": 3 * phys * REAL}
     extra = DEALIASING[cfg.fluid.dealias].extra_arrays
@@ -85,6 +86,7 @@ def live_inventory(sim) -> dict:
            "scheme_work": sum(a.nbytes for a in vars(sim.scheme).values() if isinstance(a, np.ndarray)
                               and a.ndim == 4),
            "fft_scratch": sim.layout.scratch.nbytes,
+           "fft_real_buffer": (sim.layout._rbuf if hasattr(sim.layout, "_rbuf") else sim.layout._real).nbytes,
            "physical_velocity": sim.nl.u.nbytes,
            "physical_vorticity": sim.nl.w.nbytes}
     if hasattr(sim.nl, "_copy"):
@@ -115,17 +117,25 @@ PROCESS_BYTES = 256 * 2**20
 PAIR_CHUNKS = 32
 
 
-def temporary_arrays(cfg, ranks: int = 1, threads: int = 1) -> dict:
+def temporary_arrays(cfg, ranks: int = 1, layout: str = "serial", threads: int = 1,
+                     root: bool = True) -> dict:
     """name -> bytes per rank of the largest short-lived arrays of a run, beyond
-    `predicted_inventory`: the global field rank 0 gathers for every checkpoint and field
-    snapshot, the source field of `fluid.initial.kind: file`, the positions every rank draws
-    when a set is seeded, and the histograms of one pair-statistics sample (the kernel's
-    private copies per chunk, their sum, the record and the running sums of every group)."""
+    `predicted_inventory`: the initial field's construction (`fluid.initial`'s builder; for
+    `kind: file` the global field every rank reads), on rank 0 (`root`) the global field it
+    gathers for every checkpoint and the global fields of a field snapshot, the positions every
+    rank draws when a set is seeded, and the histograms of one pair-statistics sample (the
+    kernel's private copies per chunk, their sum, the record and the running sums of every
+    group). They are never alive together: a run's peak holds the largest."""
+    from eddybox.solver.fluid.initial import INITIAL_TEMPORARY
+
     n = cfg.grid.points
+    phys, spec = local_shapes(n, ranks, layout)
     full = 3 * n * n * (n // 2 + 1) * COMPLEX
-    tmp = {"checkpoint_gather": full}
-    if cfg.fluid.initial.kind == "file":
-        tmp["initial_file"] = 2 * full  # the source block read and the field it is mapped to
+    tmp = {"initial_field": INITIAL_TEMPORARY[cfg.fluid.initial.kind](n, spec, phys)}
+    if root:
+        tmp["checkpoint_gather"] = full
+        if cfg.stats.fields.every is not None:
+            tmp["field_snapshot"] = full + 3 * n**3 * REAL  # velocity_hat and u, both global
     p = cfg.particles
     if p.sets:
         tmp["particle_seeding"] = max(s.count for s in p.sets) * (3 * REAL + 8 + 1)
@@ -152,15 +162,17 @@ _KEYS = {"particles": "particles.sets[{set}].count", "particle_seeding": "partic
          "collision_detection": "particles.sets[{set}].count"}
 
 
-def memory_needed(cfg, ranks: int = 1, layout: str = "serial", threads: int = 1) -> dict:
-    """name -> bytes per rank at the run's peak: every lasting array, the largest temporary
-    one, and the process itself."""
+def memory_needed(cfg, ranks: int = 1, layout: str = "serial", threads: int = 1,
+                  root: bool = True, process_bytes: float = PROCESS_BYTES) -> dict:
+    """name -> bytes of one rank at the run's peak: every lasting array, the largest temporary
+    one (start-up included; rank 0, `root`, also gathers the global field for checkpoints), and
+    the process itself (`process_bytes`: the interpreter, libraries and compiled kernels)."""
     total = sum(s.count for s in cfg.particles.sets)
     inv = predicted_inventory(cfg, ranks, layout, particles_per_rank=-(-total // ranks)
                               if cfg.particles.sets else None)
-    tmp = temporary_arrays(cfg, ranks, threads)
+    tmp = temporary_arrays(cfg, ranks, layout, threads, root)
     largest = max(tmp, key=tmp.get)
-    return dict(inv, **{largest: tmp[largest]}, process=PROCESS_BYTES)
+    return dict(inv, **{largest: tmp[largest]}, process=process_bytes)
 
 
 def machine_memory() -> int:
@@ -204,7 +216,9 @@ def check_memory(cfg, limit: int | None = None, ranks: int = 1, layout: str = "s
     bytes (default `machine_memory()`): `ranks_here` ranks on this machine, each needing
     `memory_needed`."""
     need = memory_needed(cfg, ranks, layout, threads)
-    total = sum(need.values()) * ranks_here
+    total = sum(need.values())
+    if ranks_here > 1:  # rank 0 and ranks_here - 1 others, which gather nothing
+        total += (ranks_here - 1) * sum(memory_needed(cfg, ranks, layout, threads, root=False).values())
     given = limit is not None
     limit = machine_memory() if limit is None else limit
     if total <= limit:

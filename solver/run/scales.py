@@ -63,6 +63,53 @@ def predicted(config) -> dict:
     return out
 
 
+def velocity_estimate(config):
+    """(u', where it comes from) to plan the time step with, or (None, why there is none): the
+    prediction of `predicted` when the forcing sets a dissipation, else the initial field's
+    energy E (u' = sqrt(2E/3)): E_0 of `spectrum`, U_0^2/8 of Taylor-Green, (A^2+B^2+C^2)/2 of
+    ABC (box averages of their squared components)."""
+    p = predicted(config)
+    if "u_rms_estimate" in p:
+        return p["u_rms_estimate"], (f"predicted from the forcing's target dissipation (eps = "
+                                     f"{C_EPS} u'^3/L, L = {INTEGRAL_OVER_FORCING_WAVELENGTH} x "
+                                     "forcing wavelength)")
+    init = config.fluid.initial
+    energy = {"spectrum": lambda: init.energy, "taylor-green": lambda: init.amplitude**2 / 8,
+              "abc": lambda: (init.a**2 + init.b**2 + init.c**2) / 2}.get(init.kind)
+    if energy is None or energy() <= 0:
+        return None, (f"no target dissipation and no initial energy (fluid.initial.kind "
+                      f"{init.kind}) to predict u' from")
+    decays = "" if config.forcing.kind != "none" and not config.fluid.frozen else \
+        "; the flow decays, so the run takes fewer steps"
+    return math.sqrt(2 * energy() / 3), f"from the initial energy, u' = sqrt(2E/3){decays}"
+
+
+def _target_dissipation(config, option):
+    eps = forcing_target(config)
+    if not eps:
+        raise ConfigError(f"{option}: the config's forcing sets no target dissipation, so eta and "
+                          "Re_lambda cannot be predicted; give forcing.dissipation (ou, linear, "
+                          "reinject with mode power)")
+    return eps
+
+
+def viscosity_for_kmax_eta(config, kmax_eta, option="--kmax-eta") -> float:
+    """The nu at which k_max eta = `kmax_eta` at the config's N and target dissipation eps:
+    eta = (nu^3/eps)^(1/4) (Pope 2000, ch. 6) solved for nu = (eps (kmax_eta/k_max)^4)^(1/3)."""
+    eps = _target_dissipation(config, option)
+    return (eps * (kmax_eta / kmax(config)) ** 4) ** (1.0 / 3.0)
+
+
+def viscosity_for_re_lambda(config, re_lambda, option="--re-lambda") -> float:
+    """The nu at which the predicted Re_lambda = u'^2 sqrt(15/(nu eps)) (Pope 2000, ch. 6:
+    lambda = sqrt(15 nu u'^2/eps), Re_lambda = u' lambda/nu) equals `re_lambda`, with u' from
+    eps = C_eps u'^3/L at the forcing's eps and L (both independent of nu at high Reynolds
+    number): nu = 15 u'^4 / (eps Re_lambda^2)."""
+    eps = _target_dissipation(config, option)
+    u = predicted(config)["u_rms_estimate"]
+    return 15.0 * u**4 / (eps * re_lambda**2)
+
+
 #: keys whose value may be given in large-eddy turnover times ('x T_E')
 EDDY_TIME_KEYS = ("forcing.timescale", "forcing.calibrate")
 

@@ -36,11 +36,12 @@ from eddybox.solver.fluid import spectral_ops as ops
 from eddybox.solver.fluid.initial import build_initial
 from eddybox.solver.fluid.layout import make_layout
 from eddybox.solver.fluid.navier_stokes import NonlinearTerm
-from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
+from eddybox.solver.fluid.timestepping import SCHEMES
 from eddybox.solver.run import checkpoint as ckpt
 from eddybox.solver.run import spin_up
 from eddybox.solver.run import run_folder, scales, stops
 from eddybox.solver.run.config import differing_keys, restart_mutable_keys
+from eddybox.solver.run.config_warnings import config_warnings
 from eddybox.solver.run.hooks import FieldsHook, FluidHook, Schedule
 from eddybox.solver.run.inventory import check_memory, ranks_on_this_machine
 from eddybox.solver.run.output import write_error
@@ -125,10 +126,8 @@ class Simulation:
         self.wall_offset = 0.0
         self.last_checkpoint = None
         self.log.write(f"eddybox run: {config.summary()}")
-        bound = spectral_cfl_bound(SCHEMES[c.time.scheme], c.fluid.dealias)
-        if c.time.cfl > bound:
-            self.log.write(f"warning: time.cfl = {c.time.cfl} is above {bound:.2f}, the "
-                           "stability bound for pseudo-spectral advection; the run may become unstable")
+        for warning in config_warnings(config):  # every warning `eddybox check` prints
+            self.log.write(f"warning: {warning}")
         self.log.write(f"  {self.layout.summary()}; {self.forcing.summary()}; "
                        f"{self.nl.summary()}; output {self.out}")
 

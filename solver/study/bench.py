@@ -34,8 +34,11 @@ from eddybox.solver.study.calibration import (
     best_times,
     calibrate,
     calibration_path,
+    load_calibration,
     measure_fluid_points,
     peak_rss_bytes,
+    save_calibration,
+    transform_floor,
 )
 
 BENCHES: dict[str, callable] = {}
@@ -84,22 +87,10 @@ def _fluid_point(n, repeats, with_numpy):
     full = benchmark_simulation(n, pruned=False)
     sim.advance()  # compile kernels, warm caches
     full.advance()
-    lay, nl = sim.layout, sim.nl
-
-    def floor(inverse, forward):
-        def run():
-            for _ in range(4):
-                for c in range(3):
-                    inverse(lay.scratch, nl.u[c])
-                for c in range(3):
-                    inverse(lay.scratch, nl.w[c])
-                for c in range(3):
-                    forward(nl.w[c], lay.scratch)
-        return run
-
+    lay = sim.layout
     t = best_times({"step": sim.advance, "step_full": full.advance,
-                      "floor_pruned": floor(nl._inv, nl._fwd),
-                      "floor_full": floor(lay.inverse, lay.forward)}, repeats)
+                    "floor_pruned": transform_floor(sim), "floor_full": transform_floor(sim, False)},
+                   repeats)
     out = {f"step_seconds_{n}": t["step"], f"step_seconds_full_transforms_{n}": t["step_full"],
            f"pruned_step_speedup_{n}": t["step_full"] / t["step"],
            f"fft_floor_pruned_seconds_{n}": t["floor_pruned"],
@@ -177,13 +168,13 @@ def bench_resolution(quick=False, kmax_eta=1.5, eps=0.1):
         sims[name].advance()
         out[f"points_{name}"] = n
         out[f"kmax_eta_{name}"] = method.kmax_index(n) * eta
-        cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}}).data
+        cfg = validate({"grid": {"points": n}, "fluid": {"dealias": dealias}})
         out[f"bytes_per_resolved_mode_{name}"] = (sum(predicted_inventory(cfg).values())
                                                   / method.kept_modes(n))
     t = best_times({k: s.advance for k, s in sims.items()}, 2 if quick else 3)
     pred = scales.predicted(validate({"grid": {"points": n_ref}, "fluid": {"viscosity": nu},
                                       "forcing": {"kind": "ou", "band": 2.0,
-                                                  "dissipation": eps}}).data)
+                                                  "dissipation": eps}}))
     u = pred["u_rms_estimate"]
     turnover = scales.INTEGRAL_OVER_FORCING_WAVELENGTH * 2 * np.pi / 2.0 / u  # L/u', band 2
     dt = 0.6 * (2 * np.pi / n_ref) / (6.0 * u)  # the default time.cfl, U_max = 6 u'
@@ -263,6 +254,15 @@ def bench_collisions_section(quick=False):
     return out
 
 
+def particle_seconds(cal, figures) -> float:
+    """Seconds per particle and step (order 8) from the particles section's measured step, less
+    the three inverse transforms of the velocity that the cost model prices on their own."""
+    n3 = float(figures["particle_step_grid"]) ** 3
+    step = figures["particle_step_seconds"]
+    rest = step - 3 * cal["fluid_model"]["a"] * n3 * np.log2(n3)
+    return (rest if rest > 0 else step) / figures["particle_step_particles"]
+
+
 def run_bench(quick=False, json_path=None, sections=None) -> int:
     import platform
 
@@ -285,14 +285,21 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
             print(f"  {k:40s} {v:.4g}" if isinstance(v, (int, float)) else f"  {k:40s} {v}", flush=True)
     if _LAST_CALIBRATION:
         cal = dict(_LAST_CALIBRATION)
-        if results.get("particles", {}).get("interp_particles_per_second"):
-            cal["interp_seconds_per_particle"] = 1.0 / results["particles"]["interp_particles_per_second"]
+        part = results.get("particles", {})
+        if part.get("interp_particles_per_second"):
+            cal["interp_seconds_per_particle"] = 1.0 / part["interp_particles_per_second"]
+        if part.get("particle_step_seconds"):
+            cal["particle_seconds"] = particle_seconds(cal, part)
         if results.get("pairs", {}).get("pairs_per_second"):
             cal["pair_seconds"] = 1.0 / results["pairs"]["pairs_per_second"]
-        path = calibration_path()
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(json.dumps(cal, indent=2))
-        print(f"cost-model calibration written to {path} (used by eddybox estimate)")
+        # figures of sections not run this time: kept from the calibration they replace
+        old = load_calibration() or {}
+        for k in ("interp_seconds_per_particle", "particle_seconds", "pair_seconds"):
+            if k not in cal and k in old:
+                cal[k] = old[k]
+        save_calibration(cal)
+        print(f"cost-model calibration written to {calibration_path()} (used by eddybox check "
+              "and estimate)")
     if json_path:
         with open(json_path, "w") as fh:
             json.dump(results, fh, indent=2, default=float)
@@ -365,36 +372,38 @@ def bench_scaling(quick=False):
 
 @register("estimate")
 def bench_estimate(quick=False):
-    """Relative error of `eddybox estimate` against measured 64^3 and 96^3 runs, with the model
-    calibrated only on other sizes (time) and the memory overhead taken from other sizes."""
+    """`eddybox estimate` against measured runs: the step time at 96^3 and 128^3 predicted by
+    a model calibrated on smaller sizes only (BENCH_SIZES), and the peak memory of two-step runs
+    (start-up, a fluid sample and the final checkpoint included) predicted by the solver's
+    memory model with the process size measured on a 16^3 run."""
     from eddybox.solver.run.config import validate
-    from eddybox.solver.run.inventory import predicted_inventory
+    from eddybox.solver.run.inventory import memory_needed
     from eddybox.solver.study import estimate as est
+    from eddybox.solver.study.calibration import BENCH_SIZES, QUICK_BENCH_SIZES, peak_run_config
 
-    cal_sizes = (24, 32, 48, 80) if quick else (32, 48, 80, 112)
-    cal = calibrate(cal_sizes, save=False)
-    cfg = validate({"grid": {"points": 64}, "fluid": {"viscosity": 0.01},
-                    "forcing": {"kind": "ou", "band": 2.0, "dissipation": 0.1}})
-    over = []
-    for n in cal_sizes[:2]:
-        inv = sum(predicted_inventory(cfg.with_changes({"grid.points": n})).values())
-        over.append(peak_rss_bytes(n, "rk4") - inv)
-    cal["memory_overhead_bytes"] = float(np.median(over))
+    cal_sizes = QUICK_BENCH_SIZES if quick else BENCH_SIZES
+    # the calibration sizes and the two predicted ones timed side by side, interleaved
+    measured = {p["n"]: p for p in measure_fluid_points(cal_sizes + (96, 128), repeats=5)}
+    cal = calibrate(cal_sizes, save=False, points=[measured[n] for n in cal_sizes])
     _LAST_CALIBRATION.clear()
     _LAST_CALIBRATION.update(cal)
-    out = {"calibration_sizes": list(cal_sizes)}
+    out = {"calibration_sizes": list(cal_sizes), "fluid_model_a": cal["fluid_model"]["a"],
+           "fluid_model_b": cal["fluid_model"]["b"],
+           "process_bytes": cal["memory_overhead_bytes"]}
     t_err, m_err = [], []
-    for n in (64, 96):
-        measured = measure_fluid_points((n,))[0]["step_seconds"]
+    for n in (96, 128):
+        step = measured[n]["step_seconds"]
         predicted, _ = est.step_time(cal, n, 1, "rk4")
         mem_measured = peak_rss_bytes(n, "rk4")
-        c = cfg.with_changes({"grid.points": n})
-        mem_predicted = sum(predicted_inventory(c).values()) + cal["memory_overhead_bytes"]
-        out[f"step_seconds_measured_{n}"] = measured
+        mem_predicted = sum(memory_needed(validate(peak_run_config(n)),
+                                          process_bytes=cal["memory_overhead_bytes"]).values())
+        out[f"step_seconds_measured_{n}"] = step
         out[f"step_seconds_predicted_{n}"] = predicted
-        out[f"memory_measured_{n}"] = mem_measured
-        out[f"memory_predicted_{n}"] = mem_predicted
-        t_err.append(abs(predicted / measured - 1))
+        out[f"step_predicted_over_measured_{n}"] = predicted / step
+        out[f"peak_memory_measured_{n}"] = mem_measured
+        out[f"peak_memory_predicted_{n}"] = mem_predicted
+        out[f"peak_memory_predicted_over_measured_{n}"] = mem_predicted / mem_measured
+        t_err.append(abs(predicted / step - 1))
         m_err.append(abs(mem_predicted / mem_measured - 1))
     out["estimate_time_error"] = max(t_err)
     out["estimate_memory_error"] = max(m_err)

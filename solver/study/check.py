@@ -2,11 +2,8 @@
 time is spent."""
 from __future__ import annotations
 
-import math
-
-import numpy as np
-
 from eddybox.solver.run import scales
+from eddybox.solver.run.config_warnings import config_warnings
 from eddybox.solver.run.inventory import human_bytes, machine_memory, memory_needed, predicted_inventory
 
 
@@ -17,7 +14,6 @@ def check_lines(cfg) -> list[str]:
     out += ["", "derived scales (predicted from the config):",
             f"  grid spacing dx            {p['dx']:.5g}",
             f"  k_max after dealiasing     {p['kmax']:.5g}"]
-    warnings = []
     if "eta" in p:
         out += [f"  target dissipation eps     {p['target_dissipation']:.5g}  (from forcing)",
                 f"  Kolmogorov length eta      {p['eta']:.5g}  = (nu^3/eps)^(1/4)",
@@ -30,71 +26,71 @@ def check_lines(cfg) -> list[str]:
         for key, rec in eddy.items():
             if isinstance(rec, dict):
                 out.append(f"  {key:26s} {rec['given']} = {rec['value']:.4g}  (with the T_E above)")
-        if p["kmax_eta"] < 1.0:
-            warnings.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not "
-                            "resolved; use more grid.points or a larger fluid.viscosity "
-                            f"(k_max eta >= 1 needs N >= {_points_for(cfg, 1.0 / p['eta'])})")
     else:
         out.append("  (no target dissipation: Kolmogorov scales are measured during the run)")
-    from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
-
-    bound = spectral_cfl_bound(SCHEMES[cfg.time.scheme], cfg.fluid.dealias)
-    if cfg.time.cfl > bound:
-        warnings.append(f"time.cfl = {cfg.time.cfl} is above {bound:.2f}, the stability bound of "
-                        f"{cfg.time.scheme} with {cfg.fluid.dealias} dealiasing for "
-                        "pseudo-spectral advection; the run may become unstable (exit code 3)")
     from eddybox.particles.physical import particle_lines
 
-    plines, pwarn = particle_lines(cfg.particles, p)
-    out += plines
-    warnings += pwarn
-    pl, pw = _pair_lines(cfg, p)
-    out += pl
-    warnings += pw
-    inv = predicted_inventory(cfg)
-    total = sum(inv.values())
-    n3 = cfg.grid.points ** 3
-    out += ["", f"memory (one process): {human_bytes(total)}  ({total / n3:.0f} bytes per grid point)"]
-    out += [f"  {k:22s} {human_bytes(v)}" for k, v in inv.items()]
-    need = memory_needed(cfg)
-    peak = sum(need.values())
-    out += [f"  at the peak, with the largest temporary arrays and the process itself: "
-            f"{human_bytes(peak)} of {human_bytes(machine_memory())} on this machine"]
-    out += cost_lines(cfg, total)
+    out += particle_lines(cfg.particles, p)
+    out += _pair_lines(cfg, p)
+    out += memory_lines(cfg)
+    out += cost_lines(cfg, sum(predicted_inventory(cfg).values()))
+    out += plan_lines(cfg)
+    warnings = config_warnings(cfg)  # the list `run` logs
     out += ["", "warnings:" if warnings else "warnings: none"] + [f"  - {w}" for w in warnings]
     return out
 
 
-def _points_for(cfg, kmax) -> int:
-    """The smallest N whose dealiased k_max reaches `kmax` with the config's dealiasing."""
-    from eddybox.solver.fluid.navier_stokes import DEALIASING
-
-    k0 = 2 * math.pi / cfg.grid.length
-    return math.ceil(kmax / (k0 * DEALIASING[cfg.fluid.dealias].kmax_index(1)))
-
-
-def _pair_lines(cfg, p) -> tuple[list[str], list[str]]:
-    """The pair statistics' bins and window, and whether r_max fits the box: in eta units it
-    is clipped at the release when it reaches beyond R_CLIP L (a warning here when the predicted
-    eta says so; eta is only measured at the release)."""
+def _pair_lines(cfg, p) -> list[str]:
+    """The pair statistics' bins and window, and where r_max lies in the box: in eta units it
+    is clipped at the release when it reaches beyond R_CLIP L (warned by config_warnings when
+    the predicted eta says so; eta is only measured at the release)."""
     pr = cfg.stats.pairs
     if pr.every is None:
-        return [], []
-    from eddybox.particles.hooks import R_CLIP, clip_separations
+        return []
+    from eddybox.particles.hooks import R_CLIP
 
     lines = ["", "pair statistics:", f"  {pr.summary()}"]
     if pr.units != "eta":
-        return lines, []
+        return lines
     if "eta" not in p:
         lines.append(f"  r_max = {pr.r_max:g} eta is checked against the box at the release, "
                      f"where eta is measured (clipped to {R_CLIP} L if it reaches further)")
-        return lines, []
-    _, msg = clip_separations(np.array([pr.r_min or pr.r_max / 100.0, pr.r_max]), p["eta"],
-                              cfg.grid.length, pr.spacing)
+        return lines
     lines.append(f"  r_max = {pr.r_max:g} eta ~ {pr.r_max * p['eta']:.4g} with the predicted "
                  f"eta (half the box: {0.5 * cfg.grid.length:.4g})")
-    return lines, ([f"{msg} with the predicted eta = {p['eta']:.4g}; the run clips it with the "
-                    "eta measured at the release"] if msg else [])
+    return lines
+
+
+def memory_lines(cfg) -> list[str]:
+    """The peak of one process (the figure `run` refuses with) and its parts."""
+    need = memory_needed(cfg)
+    peak = sum(need.values())
+    arrays = sum(predicted_inventory(cfg).values())
+    n3 = cfg.grid.points ** 3
+    return ["", f"memory at the peak (one process): {human_bytes(peak)} of "
+                f"{human_bytes(machine_memory())} on this machine (lasting arrays: "
+                f"{arrays / n3:.0f} bytes per grid point)"] + \
+        [f"  {k:22s} {human_bytes(v)}" for k, v in need.items()] + \
+        ["  (the lasting arrays, the largest short-lived one, start-up included, and eddybox "
+         "itself)"]
+
+
+def plan_lines(cfg) -> list[str]:
+    """The number of steps, the wall time and the core-hours of the run on this machine (one
+    process), from the cached calibration or a short measurement, with the assumptions."""
+    from eddybox.solver.study.calibration import CalibrationError, machine_calibration
+    from eddybox.solver.study.estimate import assumption_lines, estimate, time_lines
+
+    try:
+        cal, how = machine_calibration()
+    except (CalibrationError, OSError) as exc:  # a busy machine; no room for the short runs
+        return ["", f"plan: not available ({exc})"]
+    e = estimate(cfg, cfg.grid.points, 1, cal=cal)
+    out = ["", f"plan on this machine (one process, {e['threads_per_rank']} thread(s)):"]
+    out += time_lines(e, cfg)
+    out += ["  assumptions:"] + [f"    {a}" for a in assumption_lines(e, how, here=True)
+                                        if not a.startswith("memory")]
+    return out
 
 
 def print_check(cfg):

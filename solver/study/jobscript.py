@@ -37,6 +37,7 @@ class Job:
     estimate_seconds: float
     margin: float
     summary: str         # the estimate's figures, one comment line each
+    sets: tuple = ()     # KEY=VALUE overrides the estimate made (N, nu, particle counts)
 
 
 class Scheduler:
@@ -88,7 +89,7 @@ class Pbs(Scheduler):
 
 
 def plan_job(config_path, out, name, estimate: dict, cores_per_node: int, margin: float,
-             max_walltime: float | None, job_walltime: float | None = None) -> Job:
+             max_walltime: float | None, job_walltime: float | None = None, sets=None) -> Job:
     """Resources and time limits of one job of the chain from an `estimate()` result.
 
     limit  = the estimated wall time x (1 + margin), plus 10 minutes for start-up and the
@@ -113,7 +114,9 @@ def plan_job(config_path, out, name, estimate: dict, cores_per_node: int, margin
              f"{nodes} node(s) of {cores_per_node} cores",
              f"estimate: {estimate['steps']} steps x {estimate['seconds_per_step']:.4g} s = "
              f"{estimate['wall_seconds'] / 3600:.3g} h, {estimate['core_hours']:.4g} core-hours, "
-             f"{estimate['memory_per_rank'] / 2**30:.3g} GiB per rank",
+             f"{estimate['memory_per_rank'] / 2**30:.3g} GiB per rank at the peak"
+             + (f" (rank 0 {estimate['memory_rank0'] / 2**30:.3g} GiB)"
+                if estimate.get("memory_rank0", 0) > estimate["memory_per_rank"] else ""),
              f"job limit {hms(limit)} = estimate x {1 + margin:g} + 10 min"
              + (f", capped at {hms(max_walltime)}" if max_walltime and job_walltime is None else ""),
              f"time.walltime {int(limit - safety)} s = limit - {int(safety)} s (start-up, final "
@@ -121,7 +124,15 @@ def plan_job(config_path, out, name, estimate: dict, cores_per_node: int, margin
     return Job(name=name, config=os.path.abspath(config_path), out=os.path.abspath(out),
                ranks=ranks, threads=threads, nodes=nodes, limit_seconds=int(math.ceil(limit)),
                budget_seconds=max(1, int(limit - safety)), estimate_seconds=estimate["wall_seconds"],
-               margin=margin, summary="\n".join(lines))
+               margin=margin, summary="\n".join(lines), sets=override_args(sets or {}))
+
+
+def override_args(changes: dict) -> tuple:
+    """`KEY=VALUE` arguments of `--set` for dotted keys and their values (YAML on one line)."""
+    import yaml
+
+    return tuple(f"{k}={yaml.safe_dump(v, default_flow_style=True, width=float('inf')).strip()}"
+                 .removesuffix("\n...") for k, v in changes.items())
 
 
 def job_script(job: Job, kind: str, script_path: str, python=None) -> str:
@@ -133,6 +144,8 @@ def job_script(job: Job, kind: str, script_path: str, python=None) -> str:
     python = python or sys.executable
     q = shlex.quote
     comments = "\n".join(f"# {line}" for line in job.summary.splitlines())
+    # the estimate's own N, nu and particle counts, where they differ from the config's
+    sets = "".join(f"--set {q(kv)} \\\n    " for kv in job.sets)
     return f"""#!/bin/bash
 {chr(10).join(sch.directives(job, script_path))}
 # Written by `eddybox estimate --job-script`; a research estimate of the cost, not a promise.
@@ -167,7 +180,7 @@ else
     START=()
 fi
 "$MPIEXEC" -n {job.ranks} "$PYTHON" -m eddybox.solver.cli run "$CONFIG" --out "$OUT" ${{START[@]+"${{START[@]}}"}} \\
-    --set time.walltime="$BUDGET" --quiet
+    {sets}--set time.walltime="$BUDGET" --quiet
 code=$?
 echo "eddybox exited with $code"
 if [ -n "$cancelled" ]; then

@@ -145,6 +145,21 @@ class PairAverage:
     wr_rms: np.ndarray  # √⟨w_r²⟩
     reliable: np.ndarray  # blocking plateau found for g
 
+    def to_xarray(self):
+        """An xarray Dataset over the separation bins (dimension ``r``; coordinates the bin
+        centres ``r`` and ``r_eta``): every average with its ``*_err`` (xarray is imported here,
+        it is not needed otherwise)."""
+        import xarray as xr
+
+        names = ("rdf", "wr_mean", "wr_sq", "wr_abs", "wr_inward", "kernel", "kernel_norm")
+        data = {k: ("r", getattr(self, k)) for k in names}
+        data.update({f"{k}_err": ("r", getattr(self, f"{k}_err")) for k in names})
+        data.update(counts=("r", self.counts), wr_rms=("r", self.wr_rms),
+                    reliable=("r", self.reliable))
+        return xr.Dataset(data, coords={"r": ("r", self.r_centres), "r_eta": ("r", self.r_eta)},
+                          attrs={"group": self.group, "samples": self.n_samples,
+                                 "window": self.window.describe()})
+
 
 @dataclass
 class WrPdf:
@@ -172,6 +187,17 @@ class WrPdf:
     skewness: float
     flatness: float
     window: est.Window
+
+    def to_xarray(self):
+        """An xarray Dataset over the w_r bins (dimension ``x`` = w_r/σ at the bin centres):
+        ``pdf`` and ``pdf_err``; σ, r/η, skewness and flatness as attributes."""
+        import xarray as xr
+
+        return xr.Dataset({"pdf": ("x", self.pdf), "pdf_err": ("x", self.pdf_err)},
+                          coords={"x": ("x", self.x_centres)},
+                          attrs={"group": self.group, "r_eta": self.r_eta, "rms": self.rms,
+                                 "skewness": self.skewness, "flatness": self.flatness,
+                                 "samples": self.n_samples, "window": self.window.describe()})
 
 
 def list_pair_groups(path) -> list[str]:

@@ -1,0 +1,71 @@
+"""What a config risks, said before it runs: every warning `eddybox check` prints and `run`
+logs (one list, so the two cannot drift). A warning never stops a run; refusals are
+ConfigErrors elsewhere."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from eddybox.solver.run import scales
+
+
+def config_warnings(cfg) -> list[str]:
+    """The warnings for the validated config `cfg`, from the config alone (no time step)."""
+    p = scales.predicted(cfg)
+    out = []
+    if "eta" in p and p["kmax_eta"] < 1.0:
+        out.append(f"k_max eta = {p['kmax_eta']:.2f} < 1: the dissipation range is not resolved; "
+                   "use more grid.points or a larger fluid.viscosity (k_max eta >= 1 needs N >= "
+                   f"{points_for_kmax(cfg, 1.0 / p['eta'])})")
+    out += _cfl_warnings(cfg)
+    out += _particle_warnings(cfg)
+    out += _pair_warnings(cfg, p)
+    return out
+
+
+def points_for_kmax(cfg, kmax) -> int:
+    """The smallest N whose dealiased k_max reaches `kmax` with the config's dealiasing."""
+    from eddybox.solver.fluid.navier_stokes import DEALIASING
+
+    k0 = 2 * math.pi / cfg.grid.length
+    return math.ceil(kmax / (k0 * DEALIASING[cfg.fluid.dealias].kmax_index(1)))
+
+
+def _cfl_warnings(cfg) -> list[str]:
+    from eddybox.solver.fluid.timestepping import SCHEMES, spectral_cfl_bound
+
+    bound = spectral_cfl_bound(SCHEMES[cfg.time.scheme], cfg.fluid.dealias)
+    if cfg.time.cfl <= bound:
+        return []
+    return [f"time.cfl = {cfg.time.cfl} is above {bound:.2f}, the stability bound of "
+            f"{cfg.time.scheme} with {cfg.fluid.dealias} dealiasing for pseudo-spectral "
+            "advection; the run may become unstable (exit code 3)"]
+
+
+def _particle_warnings(cfg) -> list[str]:
+    """Sets given in physical units outside the point-particle model's range."""
+    p = cfg.particles
+    if not p.sets:
+        return []
+    from eddybox.particles.physical import physical_numbers, point_particle_warnings
+
+    out = []
+    for s in p.sets:
+        if s.radius is not None:
+            out += point_particle_warnings(s.name, physical_numbers(s.radius, s.density, p.physical))
+    return out
+
+
+def _pair_warnings(cfg, p) -> list[str]:
+    """r_max in eta units beyond R_CLIP L with the predicted eta (the run clips it at the
+    release, where eta is measured)."""
+    pr = cfg.stats.pairs
+    if pr.every is None or not cfg.particles.sets or pr.units != "eta" or "eta" not in p:
+        return []
+    from eddybox.particles.hooks import clip_separations
+
+    _, msg = clip_separations(np.array([pr.r_min or pr.r_max / 100.0, pr.r_max]), p["eta"],
+                              cfg.grid.length, pr.spacing)
+    return ([f"{msg} with the predicted eta = {p['eta']:.4g}; the run clips it with the eta "
+             "measured at the release"] if msg else [])
