@@ -170,3 +170,17 @@ def test_sets_settling_through_each_other_collide_at_the_kinetic_rate(tmp_path):
     # uniform beam, 2 pi R^2 |dv| / 2 = pi R^2 |dv| as well (so a wide shell has no bias)
     assert abs(c["kinematic"][k] - kinetic) < 4 * c["kinematic_err"][k] + 0.02 * kinetic
     assert abs(c["ratio"][k] - 1) < 4 * c["ratio_err"][k] + 0.02
+
+
+def test_check_warns_of_a_radius_that_would_not_fit_at_the_release(config_factory):
+    # the predicted eta puts 100 eta beyond a quarter of the box: check warns (the run would
+    # refuse at the release, where eta is measured); 1 eta does not
+    from eddybox.solver.run.config_warnings import config_warnings
+
+    def cfg(radius):
+        return config_factory(forcing={"kind": "ou", "band": 2.0, "dissipation": 0.1},
+                              particles={"release": 0.1, "sets": [
+                                  {"name": "a", "tau_p": 0.0, "count": 10}]},
+                              stats={"collisions": {"every": 0.1, "radius": radius}})
+    assert any("stats.collisions.radius = 100 eta" in w for w in config_warnings(cfg(100.0)))
+    assert not any("collisions" in w for w in config_warnings(cfg(1.0)))

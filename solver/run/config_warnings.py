@@ -21,6 +21,7 @@ def config_warnings(cfg) -> list[str]:
     out += _cfl_warnings(cfg)
     out += _particle_warnings(cfg)
     out += _pair_warnings(cfg, p)
+    out += _collision_warnings(cfg, p)
     return out
 
 
@@ -69,3 +70,27 @@ def _pair_warnings(cfg, p) -> list[str]:
                               cfg.grid.length, pr.spacing)
     return ([f"{msg} with the predicted eta = {p['eta']:.4g}; the run clips it with the eta "
              "measured at the release"] if msg else [])
+
+
+def _collision_warnings(cfg, p) -> list[str]:
+    """A collision radius in eta units (or from physical radii) that, with the predicted eta,
+    reaches the quarter box the run refuses at the release, where eta is measured."""
+    col = cfg.stats.collisions
+    if col.every is None or not cfg.particles.sets or "eta" not in p:
+        return []
+    if col.radius is not None:
+        if col.units != "eta":
+            return []
+        r, what = col.radius * p["eta"], f"stats.collisions.radius = {col.radius:g} eta"
+    else:
+        from eddybox.particles.physical import physical_numbers
+
+        phys = cfg.particles.physical
+        largest = max(s.radius for s in cfg.particles.sets if s.radius is not None)
+        eta_phys = physical_numbers(largest, 1000.0, phys)["eta"]
+        r, what = 2 * largest / eta_phys * p["eta"], "the sum of the largest radii"
+    if r * (1.0 + col.shell) < 0.25 * cfg.grid.length:
+        return []
+    return [f"{what} is {r:.4g} L with the predicted eta = {p['eta']:.4g}; the run refuses "
+            f"R (1 + shell) beyond a quarter of the box ({0.25 * cfg.grid.length:.4g}) at the "
+            "release"]
