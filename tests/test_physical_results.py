@@ -118,3 +118,15 @@ def test_readers_give_the_droplet_run_in_physical_units(droplet_run):
     np.testing.assert_allclose(p.columns["r_m"], p.columns["r_eta"] * ETA, rtol=HAND)
     np.testing.assert_allclose(p.columns["kernel_m3_s"], p.columns["kernel_norm"] * ETA**3 / TAU,
                                rtol=3 * HAND)
+
+
+def test_report_shows_the_physical_units(droplet_run, tmp_path):
+    from eddybox.solver.study.report import write_report
+
+    index = write_report([droplet_run[0]], tmp_path / "report")
+    text = index.read_text()
+    assert "Results in physical units" in text and "Detected collisions" in text
+    terminal = set_table([droplet_run[0]]).columns["terminal_m_s"][0]  # = V_S, tested above
+    assert f"<td>{terminal:.4g}</td>" in text
+    assert (tmp_path / "report" / "sets.csv").exists()
+    assert (tmp_path / "report" / "collisions.csv").exists()
