@@ -4,9 +4,8 @@ quantities at once.
 
 Three steps, each a plain function on arrays:
 
-1. the error of a mean (:func:`mean_error`): batch means at the coarsest blocking level that
-   keeps at least :data:`MIN_BATCHES` batches, corrected for the bias of short batches, with
-   b − 1 degrees of freedom for the t distribution;
+1. the error of a mean (:func:`mean_error`): the means of :data:`MIN_BATCHES` batches, corrected
+   for the bias of short batches, with b − 1 degrees of freedom for the t distribution;
 2. the difference of two means (:func:`independent_difference` for runs with different seeds,
    Welch's t with Welch–Satterthwaite degrees of freedom; :func:`paired_difference` for runs
    that share a seed, whose samples are correlated with each other: the error of the
@@ -29,8 +28,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from eddybox.solver.estimators.timeseries import blocking_levels
-
 __all__ = [
     "MIN_BATCHES",
     "SIGNIFICANCE_LEVEL",
@@ -47,7 +44,7 @@ __all__ = [
     "adjust",
 ]
 
-#: fewest batches the error of a mean rests on (the t distribution then has >= 7 dof)
+#: batches the error of a mean rests on (the t distribution then has 7 degrees of freedom)
 MIN_BATCHES = 8
 #: the nominal level of every test (two-sided, after the correction)
 SIGNIFICANCE_LEVEL = 0.05
@@ -76,9 +73,8 @@ def mean_error(values) -> MeanError:
     """Mean of a correlated series with a standard error fit for a t test.
 
     Batch means (Schmeiser, B. 1982, "Batch size effects in the analysis of simulation output",
-    Oper. Res. 30:556-568): the series is cut into b batches of B samples, the coarsest level of
-    Flyvbjerg & Petersen (1989, J. Chem. Phys. 91:461) pairwise blocking that leaves
-    b >= MIN_BATCHES (8 to 15 batches), and
+    Oper. Res. 30:556-568): the last b B samples are cut into b = MIN_BATCHES batches of
+    B = floor(n/b) samples (few long batches: the least bias for a given series), and
 
         S = sum_i (Y_i - Ybar)^2 / (b (b - 1)),     Y_i the batch means,
 
@@ -116,11 +112,12 @@ def mean_error(values) -> MeanError:
         se = float(x.std(ddof=1) / math.sqrt(n)) if n > 1 else math.nan
         return MeanError(mean, se, max(n - 1, 1), n, 1, n, 1.0, False,
                          f"{n} samples: too few for an error bar of correlated samples")
-    levels = blocking_levels(x)
-    j = int(np.nonzero(levels.n_blocks >= MIN_BATCHES)[0][-1])
-    b, size = int(levels.n_blocks[j]), int(levels.block_size[j])
-    s = float(levels.stderr[j]) ** 2
-    var_x = float(np.var(x[: b * size], ddof=1))
+    b = MIN_BATCHES
+    size = n // b
+    kept = x[n - b * size:]  # the remainder is dropped at the start, where a transient would be
+    means = kept.reshape(b, size).mean(axis=1)
+    s = float(np.var(means, ddof=1)) / b
+    var_x = float(np.var(kept, ddof=1))
     if var_x == 0.0 or s == 0.0:
         return MeanError(mean, 0.0, b - 1, n, size, b)
     a = (b + 1) / (2.0 * var_x)
@@ -196,7 +193,7 @@ def independent_difference(a: MeanError, b: MeanError, note: str = "") -> Differ
     diff = b.mean - a.mean
     se = math.hypot(a.stderr, b.stderr)
     dof = welch_dof(a.stderr, a.dof, b.stderr, b.dof)
-    notes = "; ".join(x for x in (note, a.note, b.note) if x)
+    notes = "; ".join(dict.fromkeys(x for x in (note, a.note, b.note) if x))
     return Difference(diff, se, dof, two_sided_p(diff, se, dof), a.mean, a.stderr, False,
                       a.reliable and b.reliable, notes)
 
@@ -208,7 +205,7 @@ def paired_difference(diff: float, error: MeanError, reference: MeanError,
     difference of the linearised samples), which carries the correlation between the runs;
     the t test has its b − 1 degrees of freedom (a paired t test on batch means: Student 1908,
     Biometrika 6:1-25, on Schmeiser 1982 batches).  ``reference`` is a over the same window."""
-    notes = "; ".join(x for x in (note, error.note) if x)
+    notes = "; ".join(dict.fromkeys(x for x in (note, error.note, reference.note) if x))
     return Difference(diff, error.stderr, error.dof, two_sided_p(diff, error.stderr, error.dof),
                       reference.mean, reference.stderr, True,
                       error.reliable and reference.reliable, notes)
