@@ -32,7 +32,7 @@ CFG = {"name": "study-test", "seed": 3, "grid": {"points": 32},
                  "pairs": {"every": 0.1, "r_max": 20.0, "r_min": 1.0, "bins": 8, "wr_bins": 31}},
        "checkpoint": {"every": 10.0}}
 REFERENCE = ["--reference", "forcing={kind: reinject, band: 2.0, mode: power, dissipation: 0.1}",
-             "--reference", "time.end=80"]
+             "--reference", "time.end=120"]
 VARY = ["--vary", "forcing.timescale=0.25 T_E,4 T_E"]
 RUNS = ["forcing.timescale=0.25-T_E", "forcing.timescale=4-T_E"]
 GIVEN = {"forcing.timescale=0.25-T_E": 0.25, "forcing.timescale=4-T_E": 4.0}
@@ -98,7 +98,7 @@ def test_resolved_absolute_values_are_in_each_runs_config(study):
         assert status[name]["resolved"]["forcing.timescale"] == {"given": f"{x:g} T_E",
                                                                  "value": f["timescale"]}
     ref = yaml.safe_load((study / "reference" / "config.yaml").read_text())
-    assert ref["forcing"]["kind"] == "reinject" and ref["time"]["end"] == 80.0
+    assert ref["forcing"]["kind"] == "reinject" and ref["time"]["end"] == 120.0
 
 
 @pytest.fixture(scope="module")

@@ -48,11 +48,12 @@ def stationary_mean(times, values) -> tuple[sig.MeanError, float]:
         return sig.MeanError(math.nan, math.nan, math.nan, x.size, reliable=False,
                              note="fewer than 20 finite samples"), math.nan
     cut = mser_truncation(x)
-    err = sig.mean_error(x[cut.index:])
+    start = cut.index if cut.accepted else x.size // 2  # as timeseries.stationary_summary
+    err = sig.mean_error(x[start:])
     if not cut.accepted:
         err = dataclasses.replace(err, reliable=False, note="; ".join(filter(None, [
             "transient not over within the first half of the series", err.note])))
-    return err, float(t[cut.index])
+    return err, float(t[start])
 
 
 def _window(times, values, start):

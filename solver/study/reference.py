@@ -30,6 +30,7 @@ import os
 from pathlib import Path
 
 import numpy as np
+import yaml
 
 from eddybox.forcing import FORCINGS
 from eddybox.solver.errors import ConfigError
@@ -97,9 +98,15 @@ def measure(folder, config_hash: str) -> dict:
     or the error bar of either is not established."""
     from eddybox.solver.study.comparison import stationary_mean
     from eddybox.solver.study.readers import read_fluid_series
-    from eddybox.solver.study.report import QUANTITIES
+    from eddybox.solver.study.report import QUANTITIES, measured_from
 
     series = read_fluid_series(folder)
+    try:
+        config = yaml.safe_load((Path(folder) / "config.yaml").read_text())
+    except (OSError, yaml.YAMLError):
+        config = None
+    keep = series["time"] >= measured_from(config if isinstance(config, dict) else {})
+    series = {k: v[keep] for k, v in series.items()}
     record = {"folder": str(folder), "config_hash": config_hash,
               "measured": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
     for key in ("eddy_time", "dissipation"):

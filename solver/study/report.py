@@ -190,9 +190,23 @@ def injection_fluctuation(s) -> Estimate:
 
 
 # --- reading runs --------------------------------------------------------------------------
-def fluid_estimates(series: dict, keys=None) -> dict:
-    """{key: Estimate} for the registered quantities (all, or `keys`)."""
+def fluid_estimates(series: dict, keys=None, t_min: float = -math.inf) -> dict:
+    """{key: Estimate} for the registered quantities (all, or `keys`), over the samples at
+    t >= ``t_min`` (see :func:`measured_from`)."""
+    if t_min > -math.inf and series["time"].size:
+        keep = series["time"] >= t_min
+        series = {k: v[keep] for k, v in series.items()}
     return {k: QUANTITIES[k].estimate(series) for k in (keys or QUANTITIES)}
+
+
+def measured_from(config: dict) -> float:
+    """Where a run's measured part may start: after the calibration window of its forcing
+    (derived.forcing_calibration.window_end, when the run calibrated one), else -inf. During the
+    window the forcing changes, so its samples belong to no stationary state of the final
+    forcing, whatever MSER-5 makes of them."""
+    cal = ((config or {}).get("derived") or {}).get("forcing_calibration") or {}
+    end = cal.get("window_end")
+    return float(end) if isinstance(end, (int, float)) and math.isfinite(end) else -math.inf
 
 
 def compare_quantity(key, series_a, est_a, series_b, est_b, paired: bool):
@@ -278,7 +292,7 @@ def load_run(run_dir, name=None, table=None) -> Run:
         config = yaml.safe_load((path / "config.yaml").read_text()) or {}
     except (OSError, yaml.YAMLError):
         config = {}
-    est = fluid_estimates(series)
+    est = fluid_estimates(series, t_min=measured_from(config))
     if table is None:
         table = pair_table([path], [name])
     rows = table.select(table.columns["run"] == name) if len(table) else table
@@ -623,7 +637,9 @@ def plot_forcing_effect(runs, effects, path, separation: float) -> bool:
                 continue
             c = COLOURS[i % len(COLOURS)]
             d = [e.flagged.difference for e in pts]
-            x = np.array([e.stokes for e in pts])
+            # runs side by side around each St (a few per cent in St, a sliver at St = 0)
+            shift = (i - 0.5 * len(runs)) * 0.03
+            x = np.array([e.stokes * (1 + shift) if e.stokes > 0 else shift * lo for e in pts])
             y = np.array([100 * v.relative for v in d])
             err = np.array([100 * v.relative_err for v in d])
             ax.plot(x, y, "-", color=c, lw=1, alpha=0.6, label=run.name)
@@ -639,6 +655,7 @@ def plot_forcing_effect(runs, effects, path, separation: float) -> bool:
                xlim=(-0.1 * lo, 2.0 * hi),
                title=f"{label} at r ≈ {', '.join(f'{r:.3g}' for r in r_used)} η: run − "
                      f"{runs[0].name}")
+        ax.set_xticks(sts)
         ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
         ax.grid(alpha=0.3, which="both")
     from matplotlib.lines import Line2D
@@ -957,7 +974,9 @@ METHODS_NOTE = (
     "91:461), with the plateau level chosen automatically. Pair statistics are pooled ratios of "
     "sums over each set pair's averaging window (see the pair section). <sup class=\"nc\">"
     f"{NOT_CONVERGED}</sup> marks estimates whose transient or blocking plateau could not be "
-    "established (series too short): their error bars are likely too small.")
+    "established (series too short): their error bars are likely too small. In a run whose "
+    "forcing was calibrated (forcing.calibrate), the stationary window starts after the "
+    "calibration window.")
 
 
 def significance_note(correction: str) -> str:

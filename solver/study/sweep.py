@@ -424,7 +424,7 @@ def run_row(run: SweepRun) -> dict:
     """Final time, fluid series and stationary means of E, eps, Re_lambda and T_E of a run
     folder (t NaN and no estimates if none)."""
     from eddybox.solver.study.readers import read_fluid_series
-    from eddybox.solver.study.report import fluid_estimates
+    from eddybox.solver.study.report import fluid_estimates, measured_from
 
     row = {"t": math.nan}
     try:
@@ -434,7 +434,8 @@ def run_row(run: SweepRun) -> dict:
     if series["time"].size:
         row["t"] = float(series["time"][-1])
     row["series"] = series
-    row["estimates"] = fluid_estimates(series, keys=[k for k, _ in SUMMARY_KEYS])
+    row["estimates"] = fluid_estimates(series, keys=[k for k, _ in SUMMARY_KEYS],
+                                       t_min=measured_from(_saved_config(run.folder)))
     return row
 
 
