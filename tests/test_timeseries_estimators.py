@@ -16,7 +16,6 @@ from scipy.signal import lfilter
 
 from eddybox.solver.estimators.timeseries import (
     PLATEAU_RULES,
-    Summary,
     block_average,
     blocking_levels,
     mser_statistic,

@@ -204,11 +204,11 @@ def paired_difference(diff: float, error: MeanError, reference: MeanError,
     per-sample difference series b_i − a_i on a common time grid (for a pooled ratio, of the
     difference of the linearised samples), which carries the correlation between the runs;
     the t test has its b − 1 degrees of freedom (a paired t test on batch means: Student 1908,
-    Biometrika 6:1-25, on Schmeiser 1982 batches).  ``reference`` is a over the same window."""
+    Biometrika 6:1-25, on Schmeiser 1982 batches).  ``reference`` is a over the same window
+    (its error enters only the relative difference's error bar, not the test)."""
     notes = "; ".join(dict.fromkeys(x for x in (note, error.note, reference.note) if x))
     return Difference(diff, error.stderr, error.dof, two_sided_p(diff, error.stderr, error.dof),
-                      reference.mean, reference.stderr, True,
-                      error.reliable and reference.reliable, notes)
+                      reference.mean, reference.stderr, True, error.reliable, notes)
 
 
 def common_grid(t_a, x_a, t_b, x_b, start: float = -math.inf):

@@ -20,7 +20,8 @@ from eddybox.solver.estimators.pairs import RATIOS
 from eddybox.solver.estimators.timeseries import mser_truncation, uniform_samples
 from eddybox.solver.study.readers import PairSeries, averaging_window, nearest_bin
 
-__all__ = ["NOT_CONVERGED", "correlated", "stationary_mean", "matched_samples", "fluid_difference", "ratio_difference", "flag_family", "Flagged"]
+__all__ = ["NOT_CONVERGED", "correlated", "stationary_mean", "matched_samples",
+           "fluid_difference", "ratio_difference", "flag_family", "Flagged"]
 
 #: the one mark of a value whose error bar is not established (series too short), in the
 #: sweep's summary, the report's tables and its CSV notes
@@ -170,8 +171,10 @@ class Flagged:
 def flag_family(differences, method: str = "holm",
                 level: float = sig.SIGNIFICANCE_LEVEL) -> list[Flagged]:
     """Correct one family of comparisons (significance.CORRECTIONS) and flag those whose
-    adjusted p-value is at or below ``level``; a comparison without a p-value is never flagged
-    and does not count towards the family."""
+    adjusted p-value is at or below ``level`` and whose error bar is established (a
+    not-converged difference counts towards the family but is never flagged: its error bar is
+    likely too small); a comparison without a p-value is never flagged and does not count."""
     diffs = list(differences)
     adj = sig.adjust([d.p_value for d in diffs], method)
-    return [Flagged(d, float(p), bool(np.isfinite(p) and p <= level)) for d, p in zip(diffs, adj)]
+    return [Flagged(d, float(p), bool(np.isfinite(p) and p <= level and d.converged))
+            for d, p in zip(diffs, adj)]

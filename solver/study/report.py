@@ -745,7 +745,8 @@ def decision_section(runs, out: Path, separation: float, correction: str, series
                   f"Filled markers: the t test rejects equality at {SIGNIFICANCE_LEVEL:g} after "
                   f"the {html.escape(correction)} correction over all {len(effects)} points of "
                   f"the figure ({n_sig} flagged); open: not; faded: not converged "
-                  f"({NOT_CONVERGED}). Table: <a href=\"forcing_effect.csv\">forcing_effect.csv</a>."
+                  f"({NOT_CONVERGED}, never flagged). Table: "
+                  "<a href=\"forcing_effect.csv\">forcing_effect.csv</a>."
                   "</p>", '<img src="forcing_effect.png" alt="relative difference of g and of the '
                   'collision kernel from the reference against the Stokes number">']
     for st in sorted(stokes_sets(runs[0])):
@@ -997,8 +998,9 @@ def significance_note(correction: str) -> str:
         "(b − a)/|a|. The p-values of each table and figure are corrected for the number of "
         f"comparisons in it: {html.escape(correction)} ({html.escape(source)}), which controls "
         f"{html.escape(controls)}; a difference is flagged when its adjusted p-value p̃ is at most "
-        f"{SIGNIFICANCE_LEVEL:g}. {NOT_CONVERGED} beside a difference: one of its error bars is "
-        "not established.")
+        f"{SIGNIFICANCE_LEVEL:g} and its error bar is established; {NOT_CONVERGED} beside a "
+        "difference: its error bar is not established (the series are too short), and it is not "
+        "flagged however small its p-value.")
 
 
 PAIRS_NOTE = (
@@ -1131,7 +1133,8 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
                   "comparisons of this table (hover a cell for paired or independent, the "
                   'degrees of freedom and the raw p). <span class="sig" '
                   'style="background:#ffe0dc;color:#a40000;font-weight:bold;padding:0 4px">'
-                  f"Bold red</span>: p̃ ≤ {SIGNIFICANCE_LEVEL:g}.</p>",
+                  f"Bold red</span>: p̃ ≤ {SIGNIFICANCE_LEVEL:g} and the error bar of the "
+                  f"difference established (never with {NOT_CONVERGED}).</p>",
                   f'<div class="scroll">{diff_html}</div>']
         parts += decision
     parts += ["<h2>Time series</h2>",

@@ -409,6 +409,8 @@ def _finish(entry, code, status, root, echo):
         "values": run.values, "exit": code, "status": run.status,
         "config_hash": run.config.hash(), "seconds": round(run.seconds, 3),
         "finished": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
+    if run.resolved:
+        status["runs"][run.name]["resolved"] = run.resolved
     write_status(root, status)
     tail = "" if code == EXIT_DONE else f" (see {console_path(root, run)})"
     echo(f"  finished {run.name}: exit {code} after {run.seconds:.1f} s{tail}")
@@ -465,8 +467,7 @@ def _reference_differences(runs, infos, correction):
                 cells.setdefault(i, [])
     for (i, label, d), f in zip(diffs, flag_family([d for *_, d in diffs], correction)):
         if f.significant:
-            mark = "" if d.converged else NOT_CONVERGED
-            cells[i].append(f"{label} {100 * d.relative:+.3g} %{mark}")
+            cells[i].append(f"{label} {100 * d.relative:+.3g} %")
     return {i: ", ".join(v) or "none" for i, v in cells.items()}, len(diffs)
 
 
@@ -497,7 +498,8 @@ def summary_table(runs: list[SweepRun], keys: list[str], correction: str = "holm
         notes.append(f"differs from reference: relative difference (b - a)/|a| where a t test "
                      f"(paired for runs with the reference's seed) rejects equality at "
                      f"{SIGNIFICANCE_LEVEL:g} after the {correction} correction over the "
-                     f"{family} comparisons of this table; details in eddybox report")
+                     f"{family} comparisons of this table, where the difference's error bar is "
+                     "established; details in eddybox report")
     if any(r.code == EXIT_STOPPED for r in runs):
         notes.append("exit 75: stopped early after a checkpoint; run the same sweep command "
                      "again to resume")
