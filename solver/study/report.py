@@ -699,7 +699,9 @@ def plot_stokes_decision(runs, stokes: float, path, series_cache=None) -> bool:
              title=f"St = {stokes:g}: radial distribution function (band: ± standard error)")
     ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
     _log_axis(ax_g.xaxis)
-    for ax, where in ((ax_p1, "2 η"), (ax_p2, "the largest r (≈ L/2)")):
+    eta = runs[0].estimates["eta"].mean
+    half = 0.5 * float((runs[0].config.get("grid") or {}).get("length", 2 * math.pi)) / eta
+    for ax, where in ((ax_p1, "2 η"), (ax_p2, f"the largest r (L/2 = {half:.3g} η)")):
         _gaussian(ax)
         ax.set(yscale="log", xlabel="w$_r$ / σ$_r$", ylabel="PDF", xlim=(-8, 8), ylim=(1e-5, 2),
                title=f"St = {stokes:g}: PDF of w$_r$ at {where}")
