@@ -545,10 +545,11 @@ def run_sweep(args) -> int:
         print(note)
     first = [r for r in runs if r.role != "dependent"]
     later = [r for r in runs if r.role == "dependent"]
-    todo = sum(r.action != "skip" for r in first) + len(later)
-    print(f"sweep: {len(runs)} runs in {root}, up to {todo} to run, {min(jobs, max(todo, 1))} at a "
-          f"time with {threads} thread(s) each"
-          + (f"; {len(later)} wait for the reference" if later else ""))
+    todo = sum(r.action != "skip" for r in runs)
+    waiting = len(later) if record is None else 0
+    print(f"sweep: {len(runs)} runs in {root}, {'up to ' if waiting else ''}{todo} to run, "
+          f"{min(jobs, max(todo, 1))} at a time with {threads} thread(s) each"
+          + (f"; {waiting} wait for the reference" if waiting else ""))
     interrupted = execute(args.config, first, root, jobs, threads, status)
     problem = None
     if later and not interrupted:
@@ -595,13 +596,15 @@ def _reference_values(ref: SweepRun, root, record):
         return (f"reference run {ref.folder} failed (exit {ref.code}; see "
                 f"{console_path(root, ref)}); the runs that resolve their settings from it were "
                 "not started"), None
+    how = "recorded in"
     if record is None:
         record = refmod.measure(ref.folder, ref.config.hash())
         if not record["converged"]:
             return refmod.not_converged_message(record), None
         refmod.write_record(root, record)
+        how = "written to"
     print(f"reference: T_E = {record['eddy_time']['mean']:.6g} ± {record['eddy_time']['stderr']:.2g}, "
           f"eps = {record['dissipation']['mean']:.6g} ± {record['dissipation']['stderr']:.2g} "
-          f"(stationary from t = {record['eddy_time']['window_start']:.4g}); written to "
+          f"(stationary from t = {record['eddy_time']['window_start']:.4g}); {how} "
           f"{Path(root) / refmod.RECORD_FILE}")
     return None, record
