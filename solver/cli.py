@@ -112,6 +112,26 @@ def _add_sweep(sp):
     sp.add_argument("--jobs", type=int, default=None,
                     help="runs at once (default: as many as fit the cores)")
     sp.add_argument("--out", default=None, help="parent folder of the runs (default: the config's output)")
+    sp.add_argument("--reference", action="append", default=[], metavar="KEY=VALUE",
+                    help="a reference run, the config with these overrides (repeatable), run "
+                         "first in DIR/reference; the other runs' 'x T_E' values resolve from its "
+                         "measured stationary T_E = L/u'")
+    sp.add_argument("--match", action="append", default=[], metavar="QUANTITY",
+                    help="give every other run the reference's measured stationary value: "
+                         "dissipation (forcing.dissipation)")
+    _add_correction(sp)
+
+
+#: the names of eddybox.solver.estimators.significance.CORRECTIONS (not imported here: the
+#: parser is built before anything heavy is imported)
+CORRECTION_NAMES = ("holm", "bh", "none")
+
+
+def _add_correction(sp):
+    sp.add_argument("--correction", default="holm", choices=CORRECTION_NAMES,
+                    help="correction of the significance tests for the number of comparisons: "
+                         "holm (Holm 1979, the chance of any false flag; default), bh (Benjamini "
+                         "& Hochberg 1995, the expected fraction of false flags) or none")
 
 
 def _add_report(sp):
@@ -119,7 +139,9 @@ def _add_report(sp):
     sp.add_argument("--out", default=None, help="folder for index.html, the PNGs and the CSV files "
                     "(default: RUN_DIR/report for one run, else a folder report/ beside the runs)")
     sp.add_argument("--separation", type=float, default=1.0, metavar="R_ETA",
-                    help="r/eta at which g and the collision kernel are drawn against St (default 1)")
+                    help="r/eta at which g and the collision kernel are drawn and compared "
+                         "against St (default 1)")
+    _add_correction(sp)
 
 
 def _add_estimate(sp):
@@ -325,7 +347,8 @@ def cmd_sweep(args, comm=None):
 def cmd_report(args, comm=None):
     from eddybox.solver.study.report import default_report_folder, write_report
 
-    index = write_report(args.runs, args.out or default_report_folder(args.runs), args.separation)
+    index = write_report(args.runs, args.out or default_report_folder(args.runs), args.separation,
+                         args.correction)
     print(f"report written to {index}")
     return EXIT_DONE
 

@@ -289,6 +289,12 @@ def _report_pairs_without_groups(c, mp):
     return ["report", str(run), "--out", str(c.root / "report")]
 
 
+def _sweep(*extra):
+    """`eddybox sweep` of the hostile config over two seeds, with these arguments."""
+    return lambda c, mp: ["sweep", c.config(), "--vary", "seed=1,2", "--out", str(c.root / "s"),
+                          *extra]
+
+
 def _estimate(*extra, calibration=None):
     def setup(c, mp):
         argv = ["estimate", c.config(), "--points", "64", "--ranks", "4", *extra]
@@ -409,6 +415,21 @@ REFUSALS = [
     ("locked-repair-one-file", _locked(lambda c, run: ["inspect", str(run / "checkpoints" / os.listdir(
         run / "checkpoints")[0]), "--repair"]), f"PID {os.getpid()}"),
     # study tools
+    ("sweep-match-without-reference", _sweep("--match", "dissipation"), "--match"),
+    ("sweep-match-unknown", _sweep("--reference", "seed=9", "--match", "energy"), "--match 'energy'"),
+    ("sweep-match-forcing-without-dissipation", _sweep(
+        "--reference", "seed=9", "--match", "dissipation", "--set", "forcing={kind: none}"),
+     "--match dissipation"),
+    ("sweep-match-reinject-energy-mode", _sweep(
+        "--reference", "seed=9", "--match", "dissipation", "--set",
+        "forcing={kind: reinject, mode: energy}"), "forcing.mode: power"),
+    ("sweep-reference-bad-key", _sweep("--reference", "forcing.timscale=1"), "--reference"),
+    ("sweep-reference-output", _sweep("--reference", "output=elsewhere"), "--reference output"),
+    ("sweep-reference-not-a-pair", _sweep("--reference", "reinject"), "--reference 'reinject'"),
+    ("report-bad-correction", lambda c, mp: ["report", str(c.run()), "--correction", "bonferoni"],
+     "--correction"),
+    ("report-negative-separation", lambda c, mp: ["report", str(c.run()), "--separation", "-1",
+                                                  "--out", str(c.root / "rep")], "--separation"),
     ("report-garbage-pairs", _report_garbage_pairs, "pairs.h5"),
     ("report-pairs-without-data", _report_pairs_without_groups, "pairs.h5"),
     ("estimate-negative-bandwidth", _estimate("--network-bandwidth", "-1e9"), "--network-bandwidth"),

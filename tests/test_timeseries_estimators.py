@@ -16,10 +16,8 @@ from scipy.signal import lfilter
 
 from eddybox.solver.estimators.timeseries import (
     PLATEAU_RULES,
-    Summary,
     block_average,
     blocking_levels,
-    difference_significance,
     mser_statistic,
     mser_truncation,
     stationary_summary,
@@ -244,43 +242,3 @@ def test_binned_summary_per_bin_errors():
     # a bin on its own gives the same numbers as the scalar summary from the same start
     one = block_average(x[s.start_index:, 2], spacing=0.5)
     assert one.stderr == pytest.approx(s.stderr[2], rel=1e-12)
-
-
-# ------------------------------------------------------------------------------------------
-# Comparing two runs
-# ------------------------------------------------------------------------------------------
-
-def test_difference_combines_errors_like_welch():
-    # with uncorrelated samples and stderr = sem, diff/err is Welch's t (scipy.stats)
-    rng = np.random.default_rng(8)
-    a, b = rng.normal(0.0, 1.0, 400), rng.normal(0.3, 2.0, 900)
-
-    def summ(v):
-        return Summary(mean=v.mean(), stderr=stats.sem(v), start_time=0.0, start_index=0,
-                       n_samples=v.size, n_eff=v.size, t_int=0.5, converged=True)
-
-    diff, err, _ = difference_significance(summ(a), summ(b))
-    welch = stats.ttest_ind(b, a, equal_var=False).statistic
-    assert diff / err == pytest.approx(welch, rel=1e-12)
-
-
-def test_difference_flags_a_five_sigma_shift():
-    n = 2**15
-    shift = 5.0 * np.sqrt(2.0) * ar1_stderr(n)  # 5 combined sigma of two such runs
-    a = stationary_summary(None, ar1(n, seed=40))
-    b = stationary_summary(None, ar1(n, seed=41) + shift)
-    diff, err, significant = difference_significance(a, b)
-    assert significant
-    assert abs(diff - shift) < 3 * err
-
-
-def test_difference_does_not_flag_identical_distributions():
-    n = 2**14
-    a = stationary_summary(None, ar1(n, seed=50))
-    b = stationary_summary(None, ar1(n, seed=51))
-    assert not difference_significance(a, b)[2]
-    # over 20 independent pairs, a 2-sigma test should fire about once (5 %)
-    flags = [difference_significance(stationary_summary(None, ar1(n, 2 * s + 100)),
-                                     stationary_summary(None, ar1(n, 2 * s + 101)))[2]
-             for s in range(20)]
-    assert sum(flags) <= 3

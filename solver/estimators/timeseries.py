@@ -37,7 +37,6 @@ __all__ = [
     "block_average",
     "stationary_summary",
     "stationary_summary_bins",
-    "difference_significance",
 ]
 
 
@@ -564,23 +563,3 @@ def stationary_summary_bins(times, values, *, batch_size: int = 5, rule: str = "
         resampled=resampled,
         note=note,
     )
-
-
-def difference_significance(a, b):
-    """Difference of two independent stationary means and whether it exceeds 2 sigma.
-
-    Returns ``(diff, combined_err, significant_at_2sigma)`` with
-
-        diff = b.mean - a.mean,   combined_err = sqrt(a.stderr^2 + b.stderr^2),
-
-    and significant when |diff| > 2 combined_err (about 95 % two-sided for Gaussian
-    errors). Independence holds for runs with different seeds; two statistics of the same
-    run are correlated and this error is then not right. Works element-wise on
-    :class:`BinnedSummary` (arrays out).
-    """
-    diff = np.asarray(b.mean, dtype=float) - np.asarray(a.mean, dtype=float)
-    err = np.hypot(np.asarray(a.stderr, dtype=float), np.asarray(b.stderr, dtype=float))
-    significant = np.abs(diff) > 2.0 * err
-    if diff.ndim == 0:
-        return float(diff), float(err), bool(significant)
-    return diff, err, significant

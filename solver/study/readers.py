@@ -41,6 +41,7 @@ __all__ = [
     "read_pair_group",
     "averaging_window",
     "time_average",
+    "nearest_bin",
     "wr_pdf",
     "read_pairs",
     "pair_table",
@@ -285,7 +286,7 @@ def time_average(series: PairSeries, t_min: float | None = None,
                        wr_rms=np.sqrt(out["wr_sq"]), reliable=e["rdf"].reliable, **out)
 
 
-def _nearest_bin(series: PairSeries, r: float, in_eta: bool) -> int:
+def nearest_bin(series: PairSeries, r: float, in_eta: bool) -> int:
     """The bin whose centre is nearest to r in log r (r in η when ``in_eta``, else in the
     units of r_edges)."""
     centres = np.nanmean(series.r_over_eta(), axis=0) if in_eta else bin_centres(series.r_edges)
@@ -304,7 +305,7 @@ def wr_pdf(series: PairSeries, r: float, t_min: float | None = None,
     window = averaging_window(series, t_min)
     keep = _window_mask(series, window, t_max)
     in_eta = series.in_eta if r_in_eta is None else r_in_eta
-    k = _nearest_bin(series, r, in_eta)
+    k = nearest_bin(series, r, in_eta)
     hist = series.wr_hist[keep, k, :].astype(np.float64)
     counts = series.counts[keep, k].astype(np.float64)
     if series.wr_under is not None and series.wr_over is not None:

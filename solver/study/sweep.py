@@ -1,6 +1,7 @@
 """`eddybox sweep`: one run per combination of varied config keys.
 
     eddybox sweep CONFIG --vary KEY=V1,V2,... [--vary ...] [--set ...] [--jobs J] [--out DIR]
+                         [--reference KEY=VALUE ...] [--match dissipation]
 
 Every combination (cartesian product) is validated before anything is written or launched.
 Each run lives in DIR/<key=value__key=value> and is a separate process
@@ -15,6 +16,11 @@ sweep again continues it:
 
 A folder holding a run of a different physical config is never overwritten: the sweep stops
 with a config error naming the folder and the differing keys.
+
+With --reference, one more run, DIR/reference (the config with those overrides), runs first; the
+runs whose settings are relative to it ('x T_E' values, --match) start only after it has finished
+and its stationary T_E and eps are measured and converged, with the resolved absolute values in
+their configs (eddybox.solver.study.reference).
 """
 from __future__ import annotations
 
@@ -35,11 +41,14 @@ from pathlib import Path
 import yaml
 
 from eddybox.solver.errors import EXIT_DONE, EXIT_NOTHING_TO_RESUME, EXIT_STOPPED, ConfigError
+from eddybox.solver.estimators.significance import SIGNIFICANCE_LEVEL
 from eddybox.solver.fluid.fft import available_cores
 from eddybox.solver.run import config as cfgmod
 from eddybox.solver.run.checkpoint import latest_checkpoint
 from eddybox.solver.run.config import differing_keys
 from eddybox.solver.run.run_folder import check_replaceable, refuse_if_locked
+from eddybox.solver.study import reference as refmod
+from eddybox.solver.study.comparison import NOT_CONVERGED, correlated, flag_family
 
 STATUS_FILE = "sweep_status.json"
 CONSOLE_DIR = ".console"
@@ -61,6 +70,8 @@ class SweepRun:
     code: int | None = None
     seconds: float = 0.0
     extra: dict = field(default_factory=dict)
+    role: str = "plain"              # plain | reference | dependent (resolved from the reference)
+    resolved: dict = field(default_factory=dict)  # key -> {given, value}, once resolved
 
 
 # --- parsing and validation ----------------------------------------------------------------
@@ -174,6 +185,40 @@ def plan_runs(config_path, vary: list[str], set_pairs: list[str], out=None) -> t
     return root, runs
 
 
+def plan_study(config_path, vary, set_pairs, out=None, reference=(), match=()):
+    """plan_runs plus the reference run (first, in DIR/reference) when ``reference`` lists its
+    KEY=VALUE overrides; the runs whose settings depend on it are marked 'dependent' and checked
+    with stand-in values, so nothing is refused only after the reference has run. Returns
+    (folder, runs, notes for the user)."""
+    root, runs = plan_runs(config_path, vary, set_pairs, out)
+    match = refmod.parse_match(match, bool(reference))
+    if not reference:
+        return root, runs, []
+    base = cfgmod.apply_overrides(cfgmod.read_yaml(config_path), set_pairs)
+    for pair in reference:
+        if "=" not in pair:
+            raise ConfigError(f"--reference {pair!r}: expected KEY=VALUE, e.g. --reference "
+                              "'forcing={kind: reinject, mode: power, dissipation: 0.1}'")
+        if pair.split("=", 1)[0].strip() == "output":
+            raise ConfigError("--reference output: the sweep puts the reference in "
+                              f"{root / refmod.NAME}")
+    try:
+        cfg = cfgmod.validate(cfgmod.apply_overrides(base, list(reference)), str(config_path))
+    except ConfigError as exc:
+        raise ConfigError(f"--reference: {exc}") from None
+    ref = SweepRun(name=refmod.NAME, values={k: "(reference)" for k in runs[0].values},
+                   overrides=list(set_pairs) + list(reference), config=cfg,
+                   folder=root / refmod.NAME, role="reference")
+    notes = []
+    for r in runs:
+        if refmod.depends_on_reference(r.config, match):
+            r.role = "dependent"
+            note = refmod.check_resolvable(r.config, match, r.name)
+            if note:
+                notes.append(note)
+    return root, [ref] + runs, list(dict.fromkeys(notes))
+
+
 # --- state of existing folders -------------------------------------------------------------
 def last_log_message(folder) -> str:
     """The last line of log.txt without its time stamp, or ''."""
@@ -212,18 +257,26 @@ def _saved_config(folder):
     return data if isinstance(data, dict) else None
 
 
-def decide_action(run: SweepRun, recorded: dict | None) -> str:
-    """start | overwrite | resume | skip for one run folder (see the module docstring)."""
-    folder = run.folder
+def precheck_folder(folder) -> bool:
+    """The checks that need no config: False for a missing or empty folder; ConfigError for a
+    file, a locked folder or a folder that is not an eddybox run; True for a run folder."""
     if folder.exists() and not folder.is_dir():
         raise ConfigError(f"{folder}: exists and is not a folder; remove it or choose another --out")
     if not folder.is_dir() or not any(folder.iterdir()):
-        return "start"
+        return False
     refuse_if_locked(str(folder), "the sweep")
-    saved = _saved_config(folder)
-    if saved is None and not any((folder / m).exists() for m in _RUN_MARKERS):
+    if _saved_config(folder) is None and not any((folder / m).exists() for m in _RUN_MARKERS):
         raise ConfigError(f"{folder}: exists and is not an eddybox run folder; the sweep will not "
                           "overwrite it; remove it or choose another --out")
+    return True
+
+
+def decide_action(run: SweepRun, recorded: dict | None) -> str:
+    """start | overwrite | resume | skip for one run folder (see the module docstring)."""
+    folder = run.folder
+    if not precheck_folder(folder):
+        return "start"
+    saved = _saved_config(folder)
     if saved is not None:
         derived = saved.pop("derived", None) or {}
         if derived.get("physics_hash") not in (None, run.config.physics_hash()):
@@ -356,16 +409,24 @@ def _finish(entry, code, status, root, echo):
         "values": run.values, "exit": code, "status": run.status,
         "config_hash": run.config.hash(), "seconds": round(run.seconds, 3),
         "finished": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
+    if run.resolved:
+        status["runs"][run.name]["resolved"] = run.resolved
     write_status(root, status)
     tail = "" if code == EXIT_DONE else f" (see {console_path(root, run)})"
     echo(f"  finished {run.name}: exit {code} after {run.seconds:.1f} s{tail}")
 
 
 # --- the summary table ---------------------------------------------------------------------
+#: what the summary shows of each run, and compares with the reference
+SUMMARY_KEYS = (("energy", "E"), ("dissipation", "eps"), ("re_lambda", "Re_lambda"),
+                ("eddy_time", "T_E"))
+
+
 def run_row(run: SweepRun) -> dict:
-    """Final time and stationary means of E, eps and Re_lambda of a run folder (NaN if none)."""
+    """Final time, fluid series and stationary means of E, eps, Re_lambda and T_E of a run
+    folder (t NaN and no estimates if none)."""
     from eddybox.solver.study.readers import read_fluid_series
-    from eddybox.solver.study.report import fluid_estimates
+    from eddybox.solver.study.report import fluid_estimates, measured_from
 
     row = {"t": math.nan}
     try:
@@ -374,34 +435,71 @@ def run_row(run: SweepRun) -> dict:
         return row
     if series["time"].size:
         row["t"] = float(series["time"][-1])
-    est = fluid_estimates(series, keys=("energy", "dissipation", "re_lambda"))
-    row.update(est)
+    row["series"] = series
+    row["estimates"] = fluid_estimates(series, keys=[k for k, _ in SUMMARY_KEYS],
+                                       t_min=measured_from(_saved_config(run.folder)))
     return row
 
 
 def _fmt_est(e) -> str:
     if e is None or not math.isfinite(e.mean):
         return "-"
-    mark = "" if e.converged else "*"
+    mark = "" if e.converged else NOT_CONVERGED
     return f"{e.mean:.4g} ± {e.stderr:.2g}{mark}"
 
 
-def summary_table(runs: list[SweepRun], keys: list[str]) -> str:
-    header = keys + ["status", "final t", "E", "eps", "Re_lambda"]
+def _reference_differences(runs, infos, correction):
+    """Per run, the text of the column 'vs reference': the summary quantities whose difference
+    from the reference is significant after the correction over every comparison of the table."""
+    from eddybox.solver.study.report import compare_quantity
+
+    ref, ref_info = runs[0], infos[0]
+    cells, diffs = {}, []
+    for i, (r, info) in enumerate(zip(runs[1:], infos[1:]), start=1):
+        if "estimates" not in info or "estimates" not in ref_info:
+            continue
+        paired = correlated(_saved_config(ref.folder), _saved_config(r.folder))
+        for key, label in SUMMARY_KEYS:
+            d = compare_quantity(key, ref_info["series"], ref_info["estimates"][key],
+                                 info["series"], info["estimates"][key], paired)
+            if d is not None:
+                diffs.append((i, label, d))
+                cells.setdefault(i, [])
+    for (i, label, d), f in zip(diffs, flag_family([d for *_, d in diffs], correction)):
+        if f.significant:
+            cells[i].append(f"{label} {100 * d.relative:+.3g} %")
+    return {i: ", ".join(v) or "none" for i, v in cells.items()}, len(diffs)
+
+
+def summary_table(runs: list[SweepRun], keys: list[str], correction: str = "holm") -> str:
+    infos = [run_row(r) for r in runs]
+    with_ref = runs[0].role == "reference"
+    header = keys + ["status", "final t"] + [label for _, label in SUMMARY_KEYS]
+    vs, family = _reference_differences(runs, infos, correction) if with_ref else ({}, 0)
+    if with_ref:
+        header.append("differs from reference")
     rows = []
-    for r in runs:
-        info = run_row(r)
+    for i, (r, info) in enumerate(zip(runs, infos)):
         code = "" if r.code is None else f" ({r.code})"
-        rows.append([r.values[k] for k in keys] + [r.status + code,
-                    "-" if not math.isfinite(info["t"]) else f"{info['t']:.4g}",
-                    _fmt_est(info.get("energy")), _fmt_est(info.get("dissipation")),
-                    _fmt_est(info.get("re_lambda"))])
+        est = info.get("estimates", {})
+        row = [r.values.get(k, "") for k in keys] + [
+            r.status + code, "-" if not math.isfinite(info["t"]) else f"{info['t']:.4g}"]
+        row += [_fmt_est(est.get(k)) for k, _ in SUMMARY_KEYS]
+        if with_ref:
+            row.append("(reference)" if i == 0 else vs.get(i, "-"))
+        rows.append(row)
     widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)]
     line = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths))  # noqa: E731
     out = [line(header), line(["-" * w for w in widths])] + [line(r) for r in rows]
     notes = ["means ± standard error over the stationary part (MSER-5 truncation, "
-             "Flyvbjerg-Petersen blocking); * not converged: the run is too short for a "
-             "reliable error bar"]
+             f"Flyvbjerg-Petersen blocking); {NOT_CONVERGED} not converged: the run is too short "
+             "for a reliable error bar"]
+    if with_ref:
+        notes.append(f"differs from reference: relative difference (b - a)/|a| where a t test "
+                     f"(paired for runs with the reference's seed) rejects equality at "
+                     f"{SIGNIFICANCE_LEVEL:g} after the {correction} correction over the "
+                     f"{family} comparisons of this table, where the difference's error bar is "
+                     "established; details in eddybox report")
     if any(r.code == EXIT_STOPPED for r in runs):
         notes.append("exit 75: stopped early after a checkpoint; run the same sweep command "
                      "again to resume")
@@ -416,29 +514,97 @@ def run_sweep(args) -> int:
     """`eddybox sweep`; returns 0 when every run succeeded, 75 when stopped by a signal, else 1."""
     if args.jobs is not None and args.jobs < 1:
         raise ConfigError(f"--jobs: expected a positive integer, got {args.jobs}")
-    root, runs = plan_runs(args.config, args.vary, args.set or [], args.out)
+    reference = getattr(args, "reference", None) or []
+    match = getattr(args, "match", None) or []
+    root, runs, notes = plan_study(args.config, args.vary, args.set or [], args.out, reference, match)
+    match = refmod.parse_match(match, bool(reference))
     if root.exists() and not root.is_dir():
         raise ConfigError(f"{root}: the sweep folder exists and is not a folder")
     status = read_status(root)
+    ref = runs[0] if runs[0].role == "reference" else None
+    record = refmod.read_record(root, ref.config.hash()) if ref else None
     for r in runs:  # every folder is checked before anything runs
-        r.action = decide_action(r, status["runs"].get(r.name))
+        if r.role == "dependent" and record is None:
+            precheck_folder(r.folder)  # decided once the reference is measured
+        else:
+            if r.role == "dependent":
+                _resolve(r, record, match)
+            r.action = decide_action(r, status["runs"].get(r.name))
     threads = threads_per_run()
     jobs = args.jobs or max(1, available_cores() // threads)
     root.mkdir(parents=True, exist_ok=True)
-    status.update(config=os.path.abspath(args.config), vary=list(args.vary), set=list(args.set or []))
+    status.update(config=os.path.abspath(args.config), vary=list(args.vary), set=list(args.set or []),
+                  reference=list(reference), match=list(match))
     for r in runs:
         if r.action == "skip":
             r.status = "skipped"
             r.code = status["runs"].get(r.name, {}).get("exit", 0)
         status["runs"].setdefault(r.name, {"values": r.values})
     write_status(root, status)
+    for note in notes:
+        print(note)
+    first = [r for r in runs if r.role != "dependent"]
+    later = [r for r in runs if r.role == "dependent"]
     todo = sum(r.action != "skip" for r in runs)
-    print(f"sweep: {len(runs)} runs in {root}, {todo} to run, {min(jobs, max(todo, 1))} at a "
-          f"time with {threads} thread(s) each")
-    interrupted = execute(args.config, runs, root, jobs, threads, status)
-    print(summary_table(runs, list(runs[0].values)))
+    waiting = len(later) if record is None else 0
+    print(f"sweep: {len(runs)} runs in {root}, {'up to ' if waiting else ''}{todo} to run, "
+          f"{min(jobs, max(todo, 1))} at a time with {threads} thread(s) each"
+          + (f"; {waiting} wait for the reference" if waiting else ""))
+    interrupted = execute(args.config, first, root, jobs, threads, status)
+    problem = None
+    if later and not interrupted:
+        problem, record = _reference_values(ref, root, record)
+        if problem is None:
+            for r in later:
+                if not r.resolved:
+                    _resolve(r, record, match)
+                    r.action = decide_action(r, status["runs"].get(r.name))
+                    if r.action == "skip":
+                        r.status, r.code = "skipped", status["runs"].get(r.name, {}).get("exit", 0)
+                _record_resolved(status, r)
+            write_status(root, status)
+            interrupted = execute(args.config, later, root, jobs, threads, status)
+        else:
+            for r in later:
+                r.status = "not started (reference)"
+    print(summary_table(runs, list(runs[-1].values), correction=getattr(args, "correction", "holm")))
+    if problem:
+        print(f"sweep: {problem}")
     print(f"compare the runs with: eddybox report {root}/*/ --out {root}-report")
     sys.stdout.flush()
     if interrupted:
         return EXIT_STOPPED
     return 0 if all(r.code == 0 for r in runs) else 1
+
+
+def _resolve(run: SweepRun, record: dict, match):
+    """Put the reference's values into a dependent run: its config and the --set overrides its
+    child receives (so they reach its config.yaml)."""
+    run.config, run.resolved = refmod.resolve(run.config, record, match)
+    run.overrides = list(run.overrides) + [f"{k}={json.dumps(v['value'])}"
+                                           for k, v in run.resolved.items()]
+
+
+def _record_resolved(status, run):
+    status["runs"].setdefault(run.name, {"values": run.values})["resolved"] = run.resolved
+
+
+def _reference_values(ref: SweepRun, root, record):
+    """(None, record) when the reference succeeded and its T_E and eps are converged (measured
+    now, or recorded for this reference before); else (one message, None)."""
+    if ref.code != 0:
+        return (f"reference run {ref.folder} failed (exit {ref.code}; see "
+                f"{console_path(root, ref)}); the runs that resolve their settings from it were "
+                "not started"), None
+    how = "recorded in"
+    if record is None:
+        record = refmod.measure(ref.folder, ref.config.hash())
+        if not record["converged"]:
+            return refmod.not_converged_message(record), None
+        refmod.write_record(root, record)
+        how = "written to"
+    print(f"reference: T_E = {record['eddy_time']['mean']:.6g} ± {record['eddy_time']['stderr']:.2g}, "
+          f"eps = {record['dissipation']['mean']:.6g} ± {record['dissipation']['stderr']:.2g} "
+          f"(stationary from t = {record['eddy_time']['window_start']:.4g}); {how} "
+          f"{Path(root) / refmod.RECORD_FILE}")
+    return None, record
