@@ -55,6 +55,21 @@ def test_check_prints_the_resolved_times(tmp_path, capsys):
     assert main(["check", str(path)]) == 0
     out = capsys.readouterr().out
     assert "T_E = L/u' (estimate)" in out and "forcing.timescale          2 T_E = " in out
+    # 10 T_E of calibration at T_F = 2 T_E is 5 forcing time scales: too few (see below)
+    assert "forcing.calibrate = 10 T_E spans 5 forcing time scales" in out
+    assert "use forcing.calibrate >= 20 T_E" in out
+
+
+@pytest.mark.parametrize("timescale,calibrate,warned", [
+    ("2 T_E", "19.9 T_E", True), ("2 T_E", "20 T_E", False), (1.0, 9.0, True), (1.0, 10.0, False),
+    ("0.25 T_E", 100.0, False)])
+def test_short_calibration_windows_are_warned(timescale, calibrate, warned):
+    # the bound is ours: 10 T_F (issue 12's 32^3 runs: 3 T_F missed eps* by 28 %, 15 T_F met it)
+    from eddybox.solver.run.config_warnings import config_warnings
+
+    cfg = validate({"grid": {"points": 32}, "fluid": {"viscosity": 0.025},
+                    "forcing": dict(OU, timescale=timescale, calibrate=calibrate)})
+    assert any("forcing.calibrate" in w for w in config_warnings(cfg)) == warned
 
 
 def _run(config_factory, forcing, end, points=16, **time):
