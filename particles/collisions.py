@@ -33,7 +33,6 @@ import math
 import numpy as np
 
 from eddybox.particles import migration
-from eddybox.particles import pairs as pairs_kernel
 from eddybox.particles.hooks import PAIR_COLUMNS, _finite, _LazyFileHook
 from eddybox.solver.errors import ConfigError, NumericalInstability
 from eddybox.solver.estimators import pairs as pair_estimators

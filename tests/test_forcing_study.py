@@ -212,7 +212,7 @@ def test_runs_differing_only_in_seed_are_rarely_flagged(config_file, tmp_path):
     the corrected test flags <= 10 % of >= 20 comparisons at the nominal 5 % level."""
     from eddybox.solver.study.comparison import correlated, flag_family, ratio_difference
     from eddybox.solver.study.readers import read_fluid_series, read_pair_group
-    from eddybox.solver.study.report import QUANTITIES, compare_quantity, fluid_estimates
+    from eddybox.solver.study.run_results import QUANTITIES, compare_quantity, fluid_estimates
 
     out = tmp_path / "seeds"
     assert main(["sweep", str(config_file), "--vary", "seed=21,22",

@@ -13,7 +13,7 @@ From Python, the names a user reads runs with are here, imported on first use (s
 """
 
 #: public name -> module of eddybox.solver.study that defines it
-_PUBLIC = {"load_run": "report", "fluid_estimates": "report",
+_PUBLIC = {"load_run": "run_results", "fluid_estimates": "run_results",
            "read_fluid_series": "readers", "read_spectra": "readers", "read_pairs": "readers",
            "read_pair_group": "readers", "list_pair_groups": "readers", "time_average": "readers",
            "wr_pdf": "readers", "pair_table": "readers",

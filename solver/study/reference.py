@@ -98,7 +98,7 @@ def measure(folder, config_hash: str) -> dict:
     or the error bar of either is not established."""
     from eddybox.solver.study.comparison import stationary_mean
     from eddybox.solver.study.readers import read_fluid_series
-    from eddybox.solver.study.report import QUANTITIES, measured_from
+    from eddybox.solver.study.run_results import QUANTITIES, measured_from
 
     series = read_fluid_series(folder)
     try:

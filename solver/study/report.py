@@ -3,13 +3,12 @@ CSV table.
 
     write_report(["runs/a", "runs/b"], "runs/compare")
         -> index.html, timeseries.png, spectra.png, pairs_<a>__<b>.png, summary.csv (and, when
-           the runs recorded them, collisions.png/.csv, lagrangian.png, sets.csv)
+           the runs recorded them, collisions.png/.csv, lagrangian.png, sets.csv, the forcing
+           decision's forcing_effect.png/.csv and decision_st*.png)
 
-Every number is a stationary mean with a standard error from eddybox.solver.estimators.timeseries: MSER-5 removes
-the initial transient, Flyvbjerg-Petersen blocking gives the error bar of the correlated rest.
-The table quantities are a registry (`QUANTITIES`, filled by `@quantity`), so a new one is a
-function of the fluid series returning an `Estimate`. Figures are drawn with matplotlib's Agg
-canvas directly (no pyplot state, no display needed).
+The numbers come from study.run_results (stationary means with blocking error bars); this
+module draws the fluid and pair figures and assembles the page. The forcing decision is
+study.report_decision, the particle sections beyond pairs study.report_particles.
 """
 from __future__ import annotations
 
@@ -18,311 +17,43 @@ import datetime
 import html
 import math
 import os
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import yaml
 
 from eddybox.solver import __version__
 from eddybox.solver.errors import ConfigError
-from eddybox.solver.estimators import timeseries as analysis
 from eddybox.solver.estimators import significance as sig
 from eddybox.solver.estimators.significance import SIGNIFICANCE_LEVEL
-from eddybox.solver.study.comparison import (
-    NOT_CONVERGED,
-    correlated,
-    flag_family,
-    fluid_difference,
-    ratio_difference,
-)
-from eddybox.solver.study.readers import check_run_dir, read_fluid_series, read_spectra
+from eddybox.solver.study.comparison import NOT_CONVERGED, correlated, flag_family, ratio_difference
+from eddybox.solver.study.readers import check_run_dir
+from eddybox.solver.study.report_decision import decision_section
 from eddybox.solver.study.report_particles import particle_sections
+from eddybox.solver.study.report_parts import (
+    COLOURS,
+    draw_pdf,
+    figure,
+    gaussian,
+    html_name,
+    log_axis,
+    pdf_label,
+    st_colour,
+)
+from eddybox.solver.study.run_results import (
+    QUANTITIES,
+    Estimate,
+    at_separation,
+    compare_quantity,
+    group_rows,
+    load_run,
+    mean_spectrum,
+    pair_groups,
+    pair_series,
+    same_set_groups,
+)
 
 KOLMOGOROV_C = 1.5  # E(k) = C eps^(2/3) k^(-5/3) in the inertial range; Pope (2000) §6.5 (from memory)
-COLOURS = ["#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2",
-           "#7f7f7f", "#bcbd22", "#17becf"]  # matplotlib's tab10, fixed so every figure agrees
-
-
-# --- estimates -----------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Estimate:
-    """A stationary mean and its standard error (NaN when it cannot be computed)."""
-
-    mean: float
-    stderr: float
-    start_time: float = math.nan
-    converged: bool = False
-    note: str = ""
-
-    @classmethod
-    def missing(cls, note):
-        return cls(math.nan, math.nan, note=note)
-
-    @classmethod
-    def from_summary(cls, s: analysis.Summary):
-        return cls(s.mean, s.stderr, s.start_time, s.converged, s.note)
-
-
-def stationary(times, values) -> Estimate:
-    """analysis.stationary_summary of one series, or a NaN estimate saying why not."""
-    v = np.asarray(values, dtype=float)
-    if v.size < 2:
-        return Estimate.missing("fewer than 2 samples")
-    if not np.all(np.isfinite(v)):
-        return Estimate.missing("the series has non-finite values")
-    try:
-        return Estimate.from_summary(analysis.stationary_summary(times, v))
-    except ValueError as exc:
-        return Estimate.missing(str(exc))
-
-
-# --- the table quantities ------------------------------------------------------------------
-@dataclass(frozen=True)
-class Quantity:
-    key: str
-    label: str
-    units: str
-    definition: str
-    estimate: Callable[[dict], Estimate]
-    #: per-sample values whose stationary mean is the estimate (what a paired comparison of two
-    #: runs differences sample by sample); None for a quantity that is not such a mean
-    samples: Callable[[dict], np.ndarray] | None = None
-
-
-QUANTITIES: dict[str, Quantity] = {}
-
-
-def quantity(key, label, units, definition):
-    """Register `func(series) -> Estimate` as a table quantity."""
-
-    def register(func):
-        QUANTITIES[key] = Quantity(key, label, units, definition, func)
-        return func
-
-    return register
-
-
-def per_sample(key, label, units, definition):
-    """Register `func(series) -> per-sample values` as a table quantity: their stationary mean."""
-
-    def register(func):
-        QUANTITIES[key] = Quantity(key, label, units, definition,
-                                   lambda s: stationary(s["time"], func(s)), func)
-        return func
-
-    return register
-
-
-def _mean_of(name):
-    return lambda s: stationary(s["time"], s[name])
-
-
-def _series_of(name):
-    return lambda s: s[name]
-
-
-for _key, _label, _units, _definition in [
-        ("energy", "E", "L² T⁻²", "kinetic energy <u·u>/2 (fluid.h5 energy)"),
-        ("dissipation", "ε", "L² T⁻³", "dissipation 2ν Σ k² E(k) (fluid.h5 dissipation)"),
-        ("u_rms", "u′", "L T⁻¹", "r.m.s. velocity √(2E/3) (fluid.h5 u_rms)"),
-        ("integral_scale", "L", "L", "integral scale π/(2u′²) ∫E(k)/k dk (fluid.h5 integral_scale)")]:
-    QUANTITIES[_key] = Quantity(_key, _label, _units, _definition, _mean_of(_key), _series_of(_key))
-
-
-@per_sample("eddy_time", "T<sub>E</sub> = L/u′", "T",
-            "large-eddy turnover time, the stationary mean of L/u′ taken sample by sample")
-def _eddy_time(s):
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return s["integral_scale"] / s["u_rms"]
-
-
-for _key, _label, _units, _definition in [
-        ("taylor_scale", "λ", "L", "Taylor microscale √(15ν u′²/ε) (fluid.h5 taylor_scale)"),
-        ("re_lambda", "Re<sub>λ</sub>", "1", "Taylor-scale Reynolds number u′λ/ν (fluid.h5 re_lambda)"),
-        ("eta", "η", "L", "Kolmogorov length (ν³/ε)^(1/4) (fluid.h5 eta)"),
-        ("kmax_eta", "k<sub>max</sub>η", "1", "resolution: largest dealiased wavenumber times η"),
-        ("skewness", "S", "1", "longitudinal velocity-derivative skewness, mean over x, y, z")]:
-    QUANTITIES[_key] = Quantity(_key, _label, _units, _definition, _mean_of(_key), _series_of(_key))
-
-
-@per_sample("isotropy", "max/min E<sub>i</sub>", "1",
-            "isotropy: max(E_x, E_y, E_z)/min(E_x, E_y, E_z) per sample, then the stationary "
-            "mean (1 for an isotropic field)")
-def _isotropy(s):
-    comp = np.stack([s["energy_x"], s["energy_y"], s["energy_z"]])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return comp.max(axis=0) / comp.min(axis=0)
-
-
-@quantity("injection_cv", "σ<sub>P</sub>/⟨P⟩", "1",
-          "fluctuation of the injected power P: its standard deviation over the stationary "
-          "window divided by its mean")
-def injection_fluctuation(s) -> Estimate:
-    """Coefficient of variation c = σ/m of the injection P over its stationary window.
-
-    The window is the MSER-5 truncation of P (White 1997, Simulation 69:323; White, Cobb &
-    Spratt 2000) on the uniform grid of analysis.uniform_samples; m is the window mean and
-    σ² = <(P - m)²> (ddof 0). Standard errors of m and of σ² are Flyvbjerg & Petersen (1989,
-    J. Chem. Phys. 91:461) blocking errors of the means of P and of (P - m)², combined by
-    first-order error propagation (the delta method; e.g. Bevington & Robinson 2003, Data
-    Reduction and Error Analysis, ch. 3), neglecting their covariance:
-
-        dc = c sqrt( (d(σ²) / (2σ²))² + (dm / m)² ).
-    """
-    t, p = s["time"], s["injection"]
-    base = stationary(t, p)
-    if not math.isfinite(base.mean):
-        return base
-    _, pu, _ = analysis.uniform_samples(t, p)
-    summ = analysis.stationary_summary(t, p)
-    w = pu[summ.start_index:]
-    m = float(w.mean())
-    dev2 = (w - m) ** 2
-    var = float(dev2.mean())
-    if m == 0.0:
-        return Estimate.missing("no power injected (mean injection is 0)")
-    cv = math.sqrt(var) / abs(m)
-    if var == 0.0:
-        return Estimate(0.0, 0.0, summ.start_time, summ.converged, summ.note)
-    dvar = float(analysis.block_average(dev2).stderr)
-    err = cv * math.hypot(dvar / (2.0 * var), summ.stderr / m)
-    return Estimate(cv, err, summ.start_time, summ.converged, summ.note)
-
-
-# --- reading runs --------------------------------------------------------------------------
-def fluid_estimates(series: dict, keys=None, t_min: float = -math.inf) -> dict:
-    """{key: Estimate} for the registered quantities (all, or `keys`), over the samples at
-    t >= ``t_min`` (see :func:`measured_from`)."""
-    if t_min > -math.inf and series["time"].size:
-        keep = series["time"] >= t_min
-        series = {k: v[keep] for k, v in series.items()}
-    return {k: QUANTITIES[k].estimate(series) for k in (keys or QUANTITIES)}
-
-
-def measured_from(config: dict) -> float:
-    """Where a run's measured part may start: after the calibration window of its forcing
-    (derived.forcing_calibration.window_end, when the run calibrated one), else -inf. During the
-    window the forcing changes, so its samples belong to no stationary state of the final
-    forcing, whatever MSER-5 makes of them."""
-    cal = ((config or {}).get("derived") or {}).get("forcing_calibration") or {}
-    end = cal.get("window_end")
-    return float(end) if isinstance(end, (int, float)) and math.isfinite(end) else -math.inf
-
-
-def compare_quantity(key, series_a, est_a, series_b, est_b, paired: bool):
-    """Run b − run a of a table quantity (comparison.fluid_difference on its per-sample values
-    from each stationary window; paired for correlated runs), or None when either is missing.
-    A quantity that is no mean of samples (a fluctuation level) is compared on the table's
-    error bars with MIN_BATCHES − 1 degrees of freedom, the fewest a mean_error has."""
-    if est_a is None or est_b is None or not (math.isfinite(est_a.mean) and math.isfinite(est_b.mean)):
-        return None
-    q = QUANTITIES[key]
-    if q.samples is None:
-        few = sig.MIN_BATCHES - 1
-        return sig.independent_difference(
-            sig.MeanError(est_a.mean, est_a.stderr, few, 0, reliable=est_a.converged),
-            sig.MeanError(est_b.mean, est_b.stderr, few, 0, reliable=est_b.converged),
-            "not a mean of samples: compared on its error bars as independent")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return fluid_difference(series_a["time"], q.samples(series_a), est_a.start_time,
-                                series_b["time"], q.samples(series_b), est_b.start_time, paired)
-
-
-def mean_spectrum(spectra, t_start):
-    """Equal-weight mean of the spectra at t >= t_start (the last one if none is that late)."""
-    k, t, e = spectra
-    if t.size == 0:
-        return None
-    keep = t >= t_start if math.isfinite(t_start) else np.ones(t.size, bool)
-    if not keep.any():
-        keep = t == t[-1]
-    return k, e[keep].mean(axis=0), int(keep.sum())
-
-
-#: the w_r PDFs of the report: at 2 eta, and at the largest separation (as near L/2 as stored)
-PDF_SEPARATIONS_ETA = (2.0,)
-
-
-def read_pdfs(run_dir, length) -> dict:
-    """group -> [WrPdf at 2 eta, WrPdf in the largest bin (nearest to L/2)] of RUN_DIR/pairs.h5,
-    pooled over each group's averaging window (readers.wr_pdf)."""
-    from eddybox.solver.study.readers import list_pair_groups, read_pair_group, wr_pdf
-
-    path = Path(run_dir) / "pairs.h5"
-    if not path.exists():
-        return {}
-    out = {}
-    for group in list_pair_groups(path):
-        series = read_pair_group(path, group)
-        if series.n_samples == 0:
-            continue
-        eta = float(np.mean(series.eta)) if series.eta is not None else math.nan
-        targets = [*PDF_SEPARATIONS_ETA, 0.5 * length / eta if eta > 0 else 1e300]
-        try:
-            pdfs = [wr_pdf(series, r, r_in_eta=True) for r in targets]
-        except ValueError:
-            continue
-        if pdfs[0].r_bin == pdfs[-1].r_bin:
-            pdfs = pdfs[:1]
-        out[group] = pdfs
-    return out
-
-
-@dataclass
-class Run:
-    name: str
-    path: Path
-    config: dict
-    series: dict
-    estimates: dict
-    spectra: object
-    pairs: object  # readers.PairTable: this run's rows of the tidy pair table
-    pdfs: dict  # group -> [readers.WrPdf]
-
-
-def load_run(run_dir, name=None, table=None) -> Run:
-    """A run folder's fluid estimates, spectra, pair table rows (from ``table``, the tidy table
-    of readers.pair_table, or read here) and w_r PDFs."""
-    from eddybox.solver.study.readers import pair_table
-
-    series = read_fluid_series(run_dir)
-    path = Path(run_dir)
-    name = name or path.name
-    try:
-        config = yaml.safe_load((path / "config.yaml").read_text()) or {}
-    except (OSError, yaml.YAMLError):
-        config = {}
-    est = fluid_estimates(series, t_min=measured_from(config))
-    if table is None:
-        table = pair_table([path], [name])
-    rows = table.select(table.columns["run"] == name) if len(table) else table
-    length = float(config.get("grid", {}).get("length", 2 * math.pi))
-    try:
-        pdfs = read_pdfs(path, length)
-    except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError) as exc:
-        raise ConfigError(f"{path / 'pairs.h5'}: not a readable pairs file of eddybox ({exc})") from None
-    return Run(name, path, config, series, est, read_spectra(path), rows, pdfs)
-
-
-def pair_groups(run: Run) -> list[str]:
-    """The set pairs of a run's table, in file order."""
-    t = run.pairs
-    if not len(t):
-        return []
-    names = [f"{a}__{b}" for a, b in zip(t.columns["set_a"], t.columns["set_b"])]
-    return list(dict.fromkeys(names))
-
-
-def group_rows(run: Run, group: str):
-    """The table rows of one set pair (a PairTable), or None."""
-    t = run.pairs
-    if not len(t):
-        return None
-    a, b = group.split("__", 1)
-    mask = (t.columns["set_a"] == a) & (t.columns["set_b"] == b)
-    return t.select(mask) if mask.any() else None
 
 
 def _run_names(dirs):
@@ -340,29 +71,10 @@ def _run_names(dirs):
 
 
 # --- figures -------------------------------------------------------------------------------
-def _figure(width, height):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
-    FigureCanvasAgg(fig)
-    return fig
-
-
-def _log_axis(axis):
-    """Log axis labelled 1, 2, 5, 10, ... in plain numbers: short ranges (less than a decade,
-    as r/eta often is) otherwise get crowded minor labels like 2x10^-1 3x10^-1."""
-    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
-
-    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
-    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-    axis.set_minor_formatter(NullFormatter())
-
-
 def plot_timeseries(runs, path):
     panels = [("energy", "E  [L² T⁻²]"), ("dissipation", "ε  [L² T⁻³]"),
               ("re_lambda", "Re$_\\lambda$")]
-    fig = _figure(11, 8.2)
+    fig = figure(11, 8.2)
     axes = fig.subplots(len(panels), 1, sharex=True)
     for ax, (key, label) in zip(axes, panels):
         for i, run in enumerate(runs):
@@ -386,7 +98,7 @@ def plot_timeseries(runs, path):
 
 
 def plot_spectra(runs, path):
-    fig = _figure(8, 4.8)
+    fig = figure(8, 4.8)
     ax = fig.subplots()
     drawn = False
     for i, run in enumerate(runs):
@@ -405,7 +117,7 @@ def plot_spectra(runs, path):
         drawn = True
     ax.axhline(KOLMOGOROV_C, color="k", ls="--", lw=1, label=f"C = {KOLMOGOROV_C} (Pope 2000)")
     ax.set_xscale("log")
-    _log_axis(ax.xaxis)
+    log_axis(ax.xaxis)
     ax.set_xlabel("k η")
     ax.set_ylabel("ε$^{-2/3}$ k$^{5/3}$ E(k)")
     ax.grid(alpha=0.3, which="both")
@@ -415,28 +127,10 @@ def plot_spectra(runs, path):
     return drawn
 
 
-def _pdf_label(pdf) -> str:
-    return f"r = {pdf.r_eta:.3g} η"
-
-
-def _draw_pdf(ax, pdf, colour, ls="-", label=None):
-    """A pooled w_r PDF with its error bars (bins with no pairs left out)."""
-    y, dy = pdf.pdf, pdf.pdf_err
-    ok = np.isfinite(y) & (y > 0)
-    dy = np.where(np.isfinite(dy), dy, 0.0)
-    ax.errorbar(pdf.x_centres[ok], y[ok], yerr=np.minimum(dy[ok], 0.999 * y[ok]), color=colour,
-                ls=ls, lw=1, marker=".", ms=3, capsize=1.5, label=label)
-
-
-def _gaussian(ax):
-    x = np.linspace(-8, 8, 321)
-    ax.plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k:", lw=1.2, label="unit Gaussian")
-
-
 def plot_pairs(runs, group, path):
     """One set pair across runs: g(r/η), the w_r PDFs at 2η and at the largest separation,
     and the collision kernel, each with its error bars."""
-    fig = _figure(13, 4.9)
+    fig = figure(13, 4.9)
     ax_g, ax_p, ax_k = fig.subplots(1, 3)
     for i, run in enumerate(runs):
         rows = group_rows(run, group)
@@ -449,9 +143,9 @@ def plot_pairs(runs, group, path):
         ax_k.errorbar(t["r_eta"], t["kernel"], yerr=t["kernel_err"], color=c, marker="o", ms=3,
                       capsize=2, label=run.name)
         for pdf, ls in zip(run.pdfs.get(group, []), ("-", "--")):
-            _draw_pdf(ax_p, pdf, c, ls, f"{run.name}, {_pdf_label(pdf)} "
+            draw_pdf(ax_p, pdf, c, ls, f"{run.name}, {pdf_label(pdf)} "
                                         f"(F = {pdf.flatness:.2f})")
-    _gaussian(ax_p)
+    gaussian(ax_p)
     ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)", title="radial distribution function")
     ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
     ax_p.set(yscale="log", xlabel="w$_r$ / rms(w$_r$)", ylabel="PDF", title="radial relative velocity",
@@ -460,8 +154,8 @@ def plot_pairs(runs, group, path):
              title="collision kernel 2πr²g⟨|w$_r$|⟩")
     for ax in (ax_g, ax_p, ax_k):
         ax.grid(alpha=0.3, which="both")
-    _log_axis(ax_g.xaxis)
-    _log_axis(ax_k.xaxis)
+    log_axis(ax_g.xaxis)
+    log_axis(ax_k.xaxis)
     # one legend under all three panels, so no panel is squeezed to make room for it
     handles, labels = ax_p.get_legend_handles_labels()
     longest = max(len(lb) for lb in labels)
@@ -470,50 +164,22 @@ def plot_pairs(runs, group, path):
     fig.savefig(path)
 
 
-def _same_set_groups(run):
-    """(group, St, rows) of the single-set groups, by Stokes number."""
-    out = []
-    for g in pair_groups(run):
-        rows = group_rows(run, g)
-        a, b = g.split("__", 1)
-        if a == b:
-            out.append((g, float(rows.columns["stokes_a"][0]), rows))
-    return sorted(out, key=lambda x: (math.isnan(x[1]), x[1]))
-
-
-def _st_colour(st, lo, hi):
-    """Colour of a Stokes number on a log scale from lo to hi (viridis); tracers black."""
-    from matplotlib import colormaps
-
-    if not (st > 0):
-        return "k"
-    f = 0.5 if hi <= lo else (math.log(st) - math.log(lo)) / (math.log(hi) - math.log(lo))
-    return colormaps["viridis"](0.9 * min(max(f, 0.0), 1.0))
-
-
-def at_separation(rows, r_eta: float, column: str):
-    """(value, error, r/η of the bin) of ``column`` in the bin nearest to r_eta (in log r)."""
-    t = rows.columns
-    k = int(np.nanargmin(np.abs(np.log(t["r_eta"]) - math.log(r_eta))))
-    return float(t[column][k]), float(t[column + "_err"][k]), float(t["r_eta"][k])
-
-
 def plot_across_stokes(run, path, r_eta: float = 1.0) -> bool:
     """One run, all its sets by Stokes number: g(r/η) with error bands; g and K/(η² u_η) at
     r ≈ ``r_eta`` η against St; the w_r PDFs at 2η and at the largest separation against a
     Gaussian.  All from the run's rows of the tidy pair table (readers.pair_table)."""
     from matplotlib.ticker import FuncFormatter
 
-    groups = _same_set_groups(run)
+    groups = same_set_groups(run)
     if not groups:
         return False
     sts = [st for _, st, _ in groups if st > 0]
     lo, hi = (min(sts), max(sts)) if sts else (1.0, 1.0)
-    fig = _figure(14, 8.4)
+    fig = figure(14, 8.4)
     (ax_g, ax_gs, ax_ks), (ax_p1, ax_p2, ax_leg) = fig.subplots(2, 3)
     xs, gs, ks = [], [], []
     for g, st, rows in groups:
-        c = _st_colour(st, lo, hi)
+        c = st_colour(st, lo, hi)
         t = rows.columns
         label = f"{g.split('__')[0]} (St = {st:.3g})"
         ok = np.isfinite(t["g"])
@@ -526,9 +192,9 @@ def plot_across_stokes(run, path, r_eta: float = 1.0) -> bool:
         ks.append(at_separation(rows, r_eta, "kernel_norm"))
         pdfs = run.pdfs.get(g, [])
         if pdfs:
-            _draw_pdf(ax_p1, pdfs[0], c, label=f"{label}, F = {pdfs[0].flatness:.2f}")
+            draw_pdf(ax_p1, pdfs[0], c, label=f"{label}, F = {pdfs[0].flatness:.2f}")
         if len(pdfs) > 1:
-            _draw_pdf(ax_p2, pdfs[-1], c, label=f"{label}, F = {pdfs[-1].flatness:.2f}")
+            draw_pdf(ax_p2, pdfs[-1], c, label=f"{label}, F = {pdfs[-1].flatness:.2f}")
     for ax, vals, what in ((ax_gs, gs, "g"), (ax_ks, ks, "K / (η² u$_η$)")):
         for (st, c), (v, e, r) in zip(xs, vals):
             ax.errorbar([st], [v], yerr=[e if math.isfinite(e) else 0.0], color=c, marker="o",
@@ -543,12 +209,12 @@ def plot_across_stokes(run, path, r_eta: float = 1.0) -> bool:
     ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)",
              title="radial distribution function (band: ± standard error)")
     ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
-    _log_axis(ax_g.xaxis)
+    log_axis(ax_g.xaxis)
     for ax, i in ((ax_p1, 0), (ax_p2, -1)):
-        _gaussian(ax)
+        gaussian(ax)
         first = next((run.pdfs[g][i] for g, _, _ in groups if len(run.pdfs.get(g, [])) > (i == -1)),
                      None)
-        where = _pdf_label(first) if first is not None else "—"
+        where = pdf_label(first) if first is not None else "—"
         ax.set(yscale="log", xlabel="w$_r$ / σ$_r$", ylabel="PDF", xlim=(-8, 8), ylim=(1e-5, 2),
                title=f"PDF of w$_r$ at {where}" + (" (largest separation)" if i == -1 else ""))
         ax.legend(fontsize=7, loc="lower center")
@@ -562,209 +228,7 @@ def plot_across_stokes(run, path, r_eta: float = 1.0) -> bool:
     return True
 
 
-# --- the forcing decision: every run against the reference, per Stokes number ----------------
-def _pair_series(run, group, cache):
-    """The stored samples of one set pair of a run (readers.read_pair_group), read once."""
-    from eddybox.solver.study.readers import read_pair_group
-
-    key = (str(run.path), group)
-    if cache is None or key not in cache:
-        path = run.path / "pairs.h5"
-        series = read_pair_group(path, group) if group in pair_groups(run) else None
-        if cache is None:
-            return series
-        cache[key] = series
-    return cache[key]
-
-
-def stokes_sets(run) -> dict:
-    """Stokes number -> (group, table rows) of a run's single-set groups (tracers at 0)."""
-    return {round(st, 9): (g, rows) for g, st, rows in _same_set_groups(run) if math.isfinite(st)}
-
-
-#: what the effect figure compares, with its label: pooled ratios of estimators.pairs.RATIOS
-EFFECT_RATIOS = (("rdf", "g"), ("kernel_norm", "K / (η² u$_η$)"))
-
-
-@dataclass(frozen=True)
-class Effect:
-    """One point of the effect figure: run − reference of one ratio at one Stokes number."""
-
-    run: int
-    stokes: float
-    group: str
-    ratio: str
-    r_eta_reference: float
-    r_eta_run: float
-    flagged: object  # comparison.Flagged
-
-
-def forcing_effects(runs, separation: float, correction: str, series_cache=None) -> list[Effect]:
-    """Every run against the first (the reference) at every Stokes number both have, for g and
-    K/(η² u_η) in the bin nearest to ``separation`` η: the differences of comparison.
-    ratio_difference (paired for runs sharing the reference's seed), corrected as one family."""
-    ref_sets = stokes_sets(runs[0])
-    found = []
-    for i, run in enumerate(runs[1:], start=1):
-        paired = correlated(runs[0].config, run.config)
-        for st, (group, _) in stokes_sets(run).items():
-            if st not in ref_sets:
-                continue
-            a = _pair_series(runs[0], ref_sets[st][0], series_cache)
-            b = _pair_series(run, group, series_cache)
-            for ratio, _ in EFFECT_RATIOS:
-                d, r_a, r_b = ratio_difference(a, b, ratio, separation, paired)
-                found.append((i, st, group, ratio, r_a, r_b, d))
-    flagged = flag_family([x[-1] for x in found], correction)
-    return [Effect(*x[:-1], f) for x, f in zip(found, flagged)]
-
-
-def plot_forcing_effect(runs, effects, path, separation: float) -> bool:
-    """Where does the forcing choice matter: (run − reference)/|reference| of g and of
-    K/(η² u_η) at r ≈ ``separation`` η against St, one colour per run, ± one standard error;
-    filled markers: significant after the correction, open: not; faded: not converged."""
-    from matplotlib.ticker import FuncFormatter
-
-    if not effects:
-        return False
-    fig = _figure(13, 5.2)
-    axes = fig.subplots(1, len(EFFECT_RATIOS), sharex=True)
-    sts = sorted({e.stokes for e in effects})
-    lo = min([s for s in sts if s > 0] or [1.0])
-    hi = max(sts + [lo])
-    for ax, (ratio, label) in zip(axes, EFFECT_RATIOS):
-        for i, run in enumerate(runs[1:], start=1):
-            pts = sorted((e for e in effects if e.run == i and e.ratio == ratio), key=lambda e: e.stokes)
-            if not pts:
-                continue
-            c = COLOURS[i % len(COLOURS)]
-            d = [e.flagged.difference for e in pts]
-            # runs side by side around each St (a few per cent in St, a sliver at St = 0)
-            shift = (i - 0.5 * len(runs)) * 0.03
-            x = np.array([e.stokes * (1 + shift) if e.stokes > 0 else shift * lo for e in pts])
-            y = np.array([100 * v.relative for v in d])
-            err = np.array([100 * v.relative_err for v in d])
-            ax.plot(x, y, "-", color=c, lw=1, alpha=0.6, label=run.name)
-            for xe, ye, ee, e, v in zip(x, y, err, pts, d):
-                alpha = 1.0 if v.converged else 0.35
-                ax.errorbar([xe], [ye], yerr=[ee if math.isfinite(ee) else 0.0], color=c,
-                            marker="o", ms=6, capsize=3, alpha=alpha,
-                            mfc=c if e.flagged.significant else "white")
-        r_used = sorted({round(e.r_eta_reference, 3) for e in effects if e.ratio == ratio})
-        ax.axhline(0.0, color="k", lw=0.8)
-        ax.set_xscale("symlog", linthresh=0.5 * lo)
-        ax.set(xlabel="St (tracers at 0)", ylabel=f"relative difference of {label}  [%]",
-               xlim=(-0.1 * lo, 2.0 * hi),
-               title=f"{label} at r ≈ {', '.join(f'{r:.3g}' for r in r_used)} η: run − "
-                     f"{runs[0].name}")
-        ax.set_xticks(sts)
-        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-        ax.grid(alpha=0.3, which="both")
-    from matplotlib.lines import Line2D
-
-    handles, labels = axes[0].get_legend_handles_labels()
-    handles += [Line2D([], [], color="grey", marker="o", ls="", mfc="grey"),
-                Line2D([], [], color="grey", marker="o", ls="", mfc="white")]
-    labels += ["significant (corrected)", "not significant"]
-    fig.legend(handles, labels, loc="outside lower center", fontsize=8, frameon=False,
-               ncol=max(1, min(4, len(labels))))
-    fig.savefig(path)
-    return True
-
-
-def plot_stokes_decision(runs, stokes: float, path, series_cache=None) -> bool:
-    """One Stokes number across runs: g(r/η) of every run with ± one standard error bands, and
-    the PDFs of w_r/σ at 2η and at the largest separation (nearest L/2) of every run with a unit
-    Gaussian."""
-    fig = _figure(14, 4.9)
-    ax_g, ax_p1, ax_p2 = fig.subplots(1, 3)
-    drawn = False
-    for i, run in enumerate(runs):
-        entry = stokes_sets(run).get(stokes)
-        if entry is None:
-            continue
-        group, rows = entry
-        drawn = True
-        c = COLOURS[i % len(COLOURS)]
-        t = rows.columns
-        ok = np.isfinite(t["g"])
-        ax_g.plot(t["r_eta"][ok], t["g"][ok], "-o", ms=3, color=c, label=run.name)
-        err = np.where(np.isfinite(t["g_err"][ok]), t["g_err"][ok], 0.0)
-        ax_g.fill_between(t["r_eta"][ok], t["g"][ok] - err, t["g"][ok] + err, color=c,
-                          alpha=0.25, lw=0)
-        pdfs = run.pdfs.get(group, [])
-        for ax, pdf in zip((ax_p1, ax_p2), (pdfs[:1] + pdfs[-1:]) if len(pdfs) > 1 else pdfs):
-            _draw_pdf(ax, pdf, c, label=f"{run.name}, {_pdf_label(pdf)}, F = {pdf.flatness:.2f}")
-    if not drawn:
-        return False
-    ax_g.set(xscale="log", xlabel="r / η", ylabel="g(r)",
-             title=f"St = {stokes:g}: radial distribution function (band: ± standard error)")
-    ax_g.axhline(1.0, color="k", lw=0.8, ls=":")
-    _log_axis(ax_g.xaxis)
-    eta = runs[0].estimates["eta"].mean
-    half = 0.5 * float((runs[0].config.get("grid") or {}).get("length", 2 * math.pi)) / eta
-    for ax, where in ((ax_p1, "2 η"), (ax_p2, f"the largest r (L/2 = {half:.3g} η)")):
-        _gaussian(ax)
-        ax.set(yscale="log", xlabel="w$_r$ / σ$_r$", ylabel="PDF", xlim=(-8, 8), ylim=(1e-5, 2),
-               title=f"St = {stokes:g}: PDF of w$_r$ at {where}")
-        ax.legend(fontsize=7, loc="lower center")
-    for ax in (ax_g, ax_p1, ax_p2):
-        ax.grid(alpha=0.3, which="both")
-    ax_g.legend(fontsize=8)
-    fig.savefig(path)
-    return True
-
-
-def write_effects_csv(runs, effects, path):
-    """forcing_effect.csv: one row per run, Stokes number and ratio of the effect figure."""
-    cols = ["run", "reference", "set", "stokes", "quantity", "r_eta_reference", "r_eta_run",
-            "reference_value", "reference_stderr", "difference", "stderr", "dof", "p_value",
-            "p_adjusted", "significant", "relative", "relative_stderr", "paired", "converged", "note"]
-    with open(path, "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(cols)
-        for e in effects:
-            d = e.flagged.difference
-            w.writerow([runs[e.run].name, runs[0].name, e.group.split("__")[0], repr(e.stokes),
-                        e.ratio, repr(e.r_eta_reference), repr(e.r_eta_run), repr(d.reference),
-                        repr(d.reference_err), repr(d.diff), repr(d.stderr), repr(float(d.dof)),
-                        repr(d.p_value), repr(e.flagged.p_adjusted), int(e.flagged.significant),
-                        repr(d.relative), repr(d.relative_err), int(d.paired), int(d.converged),
-                        d.note])
-
-
-def decision_section(runs, out: Path, separation: float, correction: str, series_cache=None) -> list[str]:
-    """The HTML of the section 'Forcing decision' (its figures and forcing_effect.csv written
-    to ``out``); [] when fewer than two runs have pair statistics."""
-    if len(runs) < 2 or not stokes_sets(runs[0]):
-        return []
-    effects = forcing_effects(runs, separation, correction, series_cache)
-    parts = [f"<h2>Forcing decision: every run against {_name(runs[0].name)}</h2>"]
-    if plot_forcing_effect(runs, effects, out / "forcing_effect.png", separation):
-        write_effects_csv(runs, effects, out / "forcing_effect.csv")
-        n_sig = sum(e.flagged.significant for e in effects)
-        parts += [f'<p class="legend">Where does the forcing choice matter? (run − reference)/'
-                  f"|reference| of g and of K/(η² u<sub>η</sub>) in the separation bin nearest to "
-                  f"r = {separation:g} η, against the Stokes number; bars: ± one standard error. "
-                  f"Filled markers: the t test rejects equality at {SIGNIFICANCE_LEVEL:g} after "
-                  f"the {html.escape(correction)} correction over all {len(effects)} points of "
-                  f"the figure ({n_sig} flagged); open: not; faded: not converged "
-                  f"({NOT_CONVERGED}, never flagged). Table: "
-                  "<a href=\"forcing_effect.csv\">forcing_effect.csv</a>."
-                  "</p>", '<img src="forcing_effect.png" alt="relative difference of g and of the '
-                  'collision kernel from the reference against the Stokes number">']
-    for st in sorted(stokes_sets(runs[0])):
-        name = f"decision_st{st:g}.png"
-        if plot_stokes_decision(runs, st, out / name, series_cache):
-            parts += [f"<h3>St = {st:g}</h3>", f'<img src="{html.escape(name)}" alt="g(r) and w_r '
-                      f'PDFs of every run at St = {st:g}">']
-    return parts
-
-
 # --- tables and the page -------------------------------------------------------------------
-def _name(name: str) -> str:
-    """A run name for HTML, breakable after '__' and ',' (sweep folder names are long)."""
-    return html.escape(name).replace("__", "__<wbr>").replace(",", ",<wbr>")
 
 
 def _num(v, digits=4):
@@ -816,7 +280,7 @@ def _pair_rows(runs):
 
 
 def summary_table(runs) -> str:
-    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
+    head = "".join(f"<th>{html_name(r.name)}</th>" for r in runs)
     rows = [f"<tr><th>quantity</th><th>units</th>{head}</tr>"]
     for q in QUANTITIES.values():
         cells = "".join(_cell(r.estimates[q.key]) for r in runs)
@@ -834,7 +298,7 @@ def differences_table(runs, correction: str = "holm", series_cache=None) -> tupl
     and the adjusted p-value; flagged when the t test (comparison; paired for runs that share
     the reference's seed) rejects equality after the correction over every cell of the table."""
     ref = runs[0]
-    head = "".join(f"<th>{_name(r.name)} − {_name(ref.name)}</th>" for r in runs[1:])
+    head = "".join(f"<th>{html_name(r.name)} − {html_name(ref.name)}</th>" for r in runs[1:])
     rows = [f"<tr><th>quantity</th>{head}</tr>"]
     labels, cells = [], {}
     paired = [correlated(ref.config, r.config) for r in runs]
@@ -846,7 +310,7 @@ def differences_table(runs, correction: str = "holm", series_cache=None) -> tupl
     for label, r_eta, group, ratio in _pair_comparisons(runs):
         labels.append(label)
         for i, r in enumerate(runs[1:], start=1):
-            a, b = _pair_series(ref, group, series_cache), _pair_series(r, group, series_cache)
+            a, b = pair_series(ref, group, series_cache), pair_series(r, group, series_cache)
             cells[(label, i)] = (None if a is None or b is None else
                                  ratio_difference(a, b, ratio, r_eta, paired[i])[0])
     keys = [k for k, d in cells.items() if d is not None]
@@ -910,7 +374,7 @@ def runs_table(runs) -> str:
         sets = ", ".join(f"{html.escape(g)} ({int(group_rows(r, g).columns['samples'][0])})"
                          for g in pair_groups(r)) or "—"
         rows.append(f'<tr><td class="t"><span class="sw" style="background:{COLOURS[i % len(COLOURS)]}">'
-                    f"</span>{_name(r.name)}</td>"
+                    f"</span>{html_name(r.name)}</td>"
                     f"<td class=\"t path\"><code>{html.escape(str(r.path))}</code></td>"
                     f"<td class=\"t\">{html.escape(_config_brief(r.config))}</td><td>{span}</td>"
                     f"<td>{t.size}</td><td class=\"t\">{sets}</td></tr>")
@@ -920,7 +384,7 @@ def runs_table(runs) -> str:
                    and any(f.get(k, "null") != "null" for f in flat)})  # not just unset vs null
     if not keys:
         return table
-    head = "".join(f"<th>{_name(r.name)}</th>" for r in runs)
+    head = "".join(f"<th>{html_name(r.name)}</th>" for r in runs)
     diff = [f"<tr><th>setting</th>{head}</tr>"] + [
         f"<tr><td><code>{html.escape(k)}</code></td>"
         + "".join(f"<td>{html.escape(fl.get(k, '—'))}</td>" for fl in flat) + "</tr>"
@@ -1027,7 +491,7 @@ def _windows_table(runs) -> str:
             t = group_rows(r, g).columns
             st = ", ".join(dict.fromkeys(f"{float(x):.3g}" for x in (t["stokes_a"][0],
                                                                      t["stokes_b"][0])))
-            rows.append(f"<tr><td>{_name(r.name)}</td><td>{html.escape(g)}</td><td>{st}</td>"
+            rows.append(f"<tr><td>{html_name(r.name)}</td><td>{html.escape(g)}</td><td>{st}</td>"
                         f'<td class="t">{html.escape(str(t["window"][0]))}</td>'
                         f"<td>{int(t['samples'][0])}</td></tr>")
     return '<div class="scroll"><table>' + "\n".join(rows) + "</table></div>"
@@ -1130,7 +594,7 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
              f'<div class="scroll">{summary_table(runs)}</div>']
     if len(runs) > 1:
         diff_html, family = differences_table(runs, correction, series_cache)
-        parts += [f"<h2>Differences from {_name(runs[0].name)}</h2>",
+        parts += [f"<h2>Differences from {html_name(runs[0].name)}</h2>",
                   '<p class="legend">run − reference ± the standard error of the difference '
                   "(relative difference (b − a)/|a| in brackets) and p̃, the p-value of the t test "
                   f"adjusted by the {html.escape(correction)} correction over the {family} "
@@ -1159,7 +623,7 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
         parts.append(f'<p class="legend">{PAIRS_NOTE}</p>')
         parts.append(_windows_table(runs))
         for run, name in st_figs:
-            parts += [f"<h3>{_name(run.name)}: across Stokes numbers</h3>",
+            parts += [f"<h3>{html_name(run.name)}: across Stokes numbers</h3>",
                       f'<p class="legend">g and K/(η² u<sub>η</sub>) in the bin nearest to r = '
                       f"{separation:g} η; colour: Stokes number (tracers black).</p>",
                       f'<img src="{html.escape(name)}" alt="pair statistics across Stokes '
@@ -1170,7 +634,7 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
     else:
         parts.append("<p>No pair statistics recorded (no particles, or stats.pairs.every is null).</p>")
     # detected collisions, Lagrangian statistics, physical units (study.report_particles)
-    parts += particle_sections(run_dirs, names, out, _figure, COLOURS)
+    parts += particle_sections(run_dirs, names, out, figure, COLOURS)
     parts += ["<h2>Definitions</h2>", _definitions(), "</body></html>"]
     index = out / "index.html"
     index.write_text("\n".join(parts), encoding="utf-8")

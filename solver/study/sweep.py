@@ -426,7 +426,7 @@ def run_row(run: SweepRun) -> dict:
     """Final time, fluid series and stationary means of E, eps, Re_lambda and T_E of a run
     folder (t NaN and no estimates if none)."""
     from eddybox.solver.study.readers import read_fluid_series
-    from eddybox.solver.study.report import fluid_estimates, measured_from
+    from eddybox.solver.study.run_results import fluid_estimates, measured_from
 
     row = {"t": math.nan}
     try:
@@ -451,7 +451,7 @@ def _fmt_est(e) -> str:
 def _reference_differences(runs, infos, correction):
     """Per run, the text of the column 'vs reference': the summary quantities whose difference
     from the reference is significant after the correction over every comparison of the table."""
-    from eddybox.solver.study.report import compare_quantity
+    from eddybox.solver.study.run_results import compare_quantity
 
     ref, ref_info = runs[0], infos[0]
     cells, diffs = {}, []
