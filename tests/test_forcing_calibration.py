@@ -69,7 +69,23 @@ def test_short_calibration_windows_are_warned(timescale, calibrate, warned):
 
     cfg = validate({"grid": {"points": 32}, "fluid": {"viscosity": 0.025},
                     "forcing": dict(OU, timescale=timescale, calibrate=calibrate)})
-    assert any("forcing.calibrate" in w for w in config_warnings(cfg)) == warned
+    assert any("forcing time scales" in w for w in config_warnings(cfg)) == warned
+
+
+def test_runs_ending_or_releasing_inside_the_calibration_window_are_warned():
+    from eddybox.solver.run.config_warnings import config_warnings
+
+    def warnings(**c):
+        return " ".join(config_warnings(validate(dict(
+            {"grid": {"points": 32}, "fluid": {"viscosity": 0.025},
+             "forcing": dict(OU, timescale=1.0, calibrate=20.0)}, **c))))
+
+    assert "time.end = 15 is within the calibration window" in warnings(time={"end": 15.0})
+    sets = [{"name": "a", "tau_p": 0.1, "count": 10}]
+    assert "particles.release = 5 is inside" in warnings(
+        time={"end": 40.0}, particles={"release": 5.0, "sets": sets})
+    quiet = warnings(time={"end": 40.0}, particles={"release": 25.0, "sets": sets})
+    assert "calibration window" not in quiet
 
 
 def _run(config_factory, forcing, end, points=16, **time):

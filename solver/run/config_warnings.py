@@ -52,24 +52,40 @@ CALIBRATION_MIN_TIMESCALES = 10.0
 
 
 def _calibration_warnings(cfg) -> list[str]:
-    """An OU calibration window too short for its forcing time scale."""
+    """An OU calibration window too short for its forcing time scale, or one that the run's end
+    or the particles' release falls inside (the forcing still changes there)."""
+    from eddybox.solver.errors import ConfigError
+
     f = cfg.forcing
     if getattr(f, "calibrate", None) is None or getattr(f, "timescale", None) is None:
         return []
     try:
         resolved, record = scales.resolve_eddy_times(cfg)
-    except Exception:  # T_E cannot be predicted: the refusal comes from the config check
+    except ConfigError:  # T_E cannot be predicted: the refusal comes from the config check
         return []
     window, t_f = float(resolved.forcing.calibrate), float(resolved.forcing.timescale)
-    if window >= CALIBRATION_MIN_TIMESCALES * t_f:
-        return []
-    least = CALIBRATION_MIN_TIMESCALES * t_f
-    least = (f"{least / record['eddy_time']:.3g} T_E" if isinstance(f.calibrate, str)
-             else f"{least:.4g}")  # in the units the user gave
-    return [f"forcing.calibrate = {f.calibrate} spans {window / t_f:.3g} forcing time scales "
-            f"(forcing.timescale = {f.timescale}); below {CALIBRATION_MIN_TIMESCALES:g} T_F the "
-            "calibrated variance can miss the target dissipation by more than its recorded "
-            f"error; use forcing.calibrate >= {least}"]
+
+    def given(v):  # a value as the user gave it: 'x T_E' or a short number
+        return v if isinstance(v, str) else f"{v:.4g}"
+
+    out = []
+    if window < CALIBRATION_MIN_TIMESCALES * t_f:
+        least = CALIBRATION_MIN_TIMESCALES * t_f
+        least = f"{least / record['eddy_time']:.3g} T_E" if isinstance(f.calibrate, str) else f"{least:.4g}"
+        out.append(f"forcing.calibrate = {given(f.calibrate)} spans {window / t_f:.3g} forcing "
+                   f"time scales (forcing.timescale = {given(f.timescale)}); below "
+                   f"{CALIBRATION_MIN_TIMESCALES:g} T_F the calibrated variance can miss the "
+                   f"target dissipation by more than its recorded error; use forcing.calibrate "
+                   f">= {least}")
+    if cfg.time.end <= window:
+        out.append(f"time.end = {cfg.time.end:g} is within the calibration window (forcing."
+                   f"calibrate = {given(f.calibrate)} = {window:.4g}): the run measures nothing "
+                   "at the calibrated forcing")
+    elif cfg.particles.sets and cfg.particles.release < window:
+        out.append(f"particles.release = {cfg.particles.release:g} is inside the calibration "
+                   f"window (to t = {window:.4g}): the particles first see a forcing whose "
+                   "variance still changes; release them after the window")
+    return out
 
 
 def _particle_warnings(cfg) -> list[str]:
