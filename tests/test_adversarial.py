@@ -289,6 +289,14 @@ def _report_pairs_without_groups(c, mp):
     return ["report", str(run), "--out", str(c.root / "report")]
 
 
+def _report_into_user_folder(c, mp):
+    site = c.root / "site"
+    site.mkdir()
+    (site / "index.html").write_text("<html>my own page</html>")
+    (site / "summary.csv").write_text("a,b\n1,2\n")
+    return ["report", str(c.run()), "--out", str(site)]
+
+
 def _sweep(*extra):
     """`eddybox sweep` of the hostile config over two seeds, with these arguments."""
     return lambda c, mp: ["sweep", c.config(), "--vary", "seed=1,2", "--out", str(c.root / "s"),
@@ -432,6 +440,7 @@ REFUSALS = [
                                                   "--out", str(c.root / "rep")], "--separation"),
     ("report-garbage-pairs", _report_garbage_pairs, "pairs.h5"),
     ("report-pairs-without-data", _report_pairs_without_groups, "pairs.h5"),
+    ("report-into-a-folder-of-the-users", _report_into_user_folder, "holds files eddybox did not write"),
     ("estimate-negative-bandwidth", _estimate("--network-bandwidth", "-1e9"), "--network-bandwidth"),
     ("estimate-nan-latency", _estimate("--network-latency", "nan"), "--network-latency"),
     ("estimate-negative-particles", _estimate("--particles", "-5"), "--particles"),

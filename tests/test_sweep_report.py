@@ -192,6 +192,28 @@ def report(swept, tmp_path_factory):
     return out, index
 
 
+def test_report_writes_again_only_where_a_report_wrote(swept, report, tmp_path):
+    from eddybox.solver.errors import ConfigError
+    from eddybox.solver.run.run_folder import foreign_entries
+
+    import shutil
+
+    assert (report[0] / ".eddybox-report").is_file()
+    again = shutil.copytree(report[0], tmp_path / "again")
+    write_report([swept / NAMES[0]], again)  # a report's own folder: written again
+    # a folder of the user's with a file of the same name is refused, and left as it was
+    site = tmp_path / "site"
+    site.mkdir()
+    (site / "pairs.csv").write_text("mine")
+    with pytest.raises(ConfigError, match="holds files eddybox did not write"):
+        write_report([swept / NAMES[0]], site)
+    assert [p.name for p in site.iterdir()] == ["pairs.csv"]
+    # a report inside a run folder (the demo's report/) counts as eddybox's own output there
+    run = shutil.copytree(swept / NAMES[0], tmp_path / "run")
+    write_report([run], run / "report")
+    assert foreign_entries(run) == []
+
+
 def _csv_rows(out):
     with open(out / "summary.csv", newline="") as fh:
         return list(csv.DictReader(fh))

@@ -28,6 +28,8 @@ from eddybox.solver.errors import ConfigError
 
 MARKER = ".eddybox-run"
 LOCK = ".eddybox-lock"
+#: marks a folder `eddybox report` wrote (it writes again only into such a folder, or a new one)
+REPORT_MARKER = ".eddybox-report"
 #: bookkeeping files: a folder holding only these holds no run
 BOOKKEEPING = (MARKER, LOCK)
 
@@ -42,7 +44,7 @@ _FILES = re.compile(r"(?:config\.yaml(?:\.tmp\d+)?|log\.txt"
 _FOLDERS = {
     "checkpoints": (re.compile(_CHECKPOINT + r"(?:\.tmp\d+)?"), {_SET_ASIDE: re.compile(_CHECKPOINT)}),
     "fields": (re.compile(r"field_\d+\.h5(?:\.tmp)?|" + _FIELD), {_SET_ASIDE: re.compile(_FIELD)}),
-    "report": (re.compile(r"[A-Za-z0-9_.=+\-]+\.(?:html|csv|png)"), {}),
+    "report": (re.compile(r"[A-Za-z0-9_.=+\-]+\.(?:html|csv|png)|" + re.escape(REPORT_MARKER)), {}),
 }
 #: temporary files left by writes that were killed (removed when a run takes its folder over)
 _TEMPORARY = re.compile(r".*\.h5\.(?:tmp\d*|rebuild|repair)|config\.yaml\.tmp\d+")

@@ -26,6 +26,7 @@ from eddybox.solver import __version__
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.estimators import significance as sig
 from eddybox.solver.estimators.significance import SIGNIFICANCE_LEVEL
+from eddybox.solver.run.run_folder import REPORT_MARKER
 from eddybox.solver.study.comparison import NOT_CONVERGED, correlated, flag_family, ratio_difference
 from eddybox.solver.study.readers import check_run_dir
 from eddybox.solver.study.report_decision import decision_section
@@ -532,6 +533,28 @@ def default_report_folder(run_dirs) -> Path:
     return Path(os.path.commonpath([str(p.parent) for p in paths])) / "report"
 
 
+def _check_report_folder(out: Path):
+    """A report replaces files only in a folder an earlier report wrote (its marker, or an
+    index.html of eddybox's from before the marker existed); any other folder must be new or
+    empty, so that no file of the user's is overwritten."""
+    if not out.exists():
+        return
+    if not out.is_dir():
+        raise ConfigError(f"--out {out}: exists and is not a folder")
+    if (out / REPORT_MARKER).is_file():
+        return
+    try:
+        names = sorted(p.name for p in out.iterdir())
+        head = (out / "index.html").read_text(errors="replace")[:4000] if "index.html" in names else ""
+    except OSError as exc:
+        raise ConfigError(f"--out {out}: cannot read the folder ({exc.strerror})") from None
+    if not names or "<title>eddybox report" in head:
+        return
+    shown = ", ".join(names[:4]) + (f" and {len(names) - 4} more" if len(names) > 4 else "")
+    raise ConfigError(f"--out {out}: holds files eddybox did not write ({shown}); give a new or "
+                      "empty folder, or the folder of an earlier eddybox report")
+
+
 def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "holm") -> Path:
     """Write index.html, its PNG figures, summary.csv and pairs.csv (with several runs also
     forcing_effect.csv) for `run_dirs` into `out_dir`; returns the path of index.html.
@@ -551,14 +574,17 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
     for d in run_dirs:
         check_run_dir(d)
     out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise ConfigError(f"--out {out}: exists and is not a folder")
+    _check_report_folder(out)
     from eddybox.solver.study.readers import pair_table
 
     names = _run_names(run_dirs)
     table = pair_table(run_dirs, names)  # the one reading of pairs.h5 behind figures and CSV
     runs = [load_run(d, n, table) for d, n in zip(run_dirs, names)]
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        (out / REPORT_MARKER).touch()
+    except OSError as exc:
+        raise ConfigError(f"--out {out}: cannot create the report folder ({exc.strerror})") from None
 
     plot_timeseries(runs, out / "timeseries.png")
     has_spectra = plot_spectra(runs, out / "spectra.png")
