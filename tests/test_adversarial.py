@@ -297,6 +297,11 @@ def _report_into_user_folder(c, mp):
     return ["report", str(c.run()), "--out", str(site)]
 
 
+def _bench_json_over_users_file(c, mp):
+    (c.root / "results.json").write_text('{"my": "measurements"}')
+    return ["bench", "--section", "estimate", "--quick", "--json", str(c.root / "results.json")]
+
+
 def _sweep(*extra):
     """`eddybox sweep` of the hostile config over two seeds, with these arguments."""
     return lambda c, mp: ["sweep", c.config(), "--vary", "seed=1,2", "--out", str(c.root / "s"),
@@ -460,6 +465,7 @@ REFUSALS = [
         "--ranks", "4", "--kmax-eta", "1e12", "--calibration", str(c.root / "good-cal.json")],
      "--kmax-eta"),
     ("bench-unknown-section", lambda c, mp: ["bench", "--section", "everything"], "--section"),
+    ("bench-json-over-a-users-file", _bench_json_over_users_file, "--json"),
 ]
 
 

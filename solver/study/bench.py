@@ -25,6 +25,7 @@ import os
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -263,10 +264,43 @@ def particle_seconds(cal, figures) -> float:
     return (rest if rest > 0 else step) / figures["particle_step_particles"]
 
 
+def _check_json_target(path):
+    """--json may replace only an earlier bench's figures (a JSON object with its "machine"
+    entry), so a file of the user's is never overwritten; checked before any section runs."""
+    from eddybox.solver.errors import ConfigError
+
+    target = Path(path)
+    if target.exists():
+        try:
+            old = json.loads(target.read_text())
+            ours = isinstance(old, dict) and isinstance(old.get("machine"), dict)
+        except (OSError, ValueError, UnicodeDecodeError):
+            ours = False
+        if not ours:
+            raise ConfigError(f"--json {path}: exists and is not the figures of an earlier eddybox "
+                              "bench; give a new file name")
+    parent = target.parent if str(target.parent) else Path(".")
+    if not parent.is_dir() or not os.access(parent, os.W_OK):
+        raise ConfigError(f"--json {path}: cannot write there (no such folder, or not writable)")
+
+
+def _write_json(path, results):
+    """Write the figures atomically: an earlier file is replaced only by a complete one."""
+    tmp = Path(f"{path}.tmp{os.getpid()}")
+    try:
+        tmp.write_text(json.dumps(results, indent=2, default=float))
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
 def run_bench(quick=False, json_path=None, sections=None) -> int:
     import platform
 
     from eddybox.solver.fluid.fft import available_cores, thread_count
+
+    if json_path:
+        _check_json_target(json_path)
 
     results = {"machine": {"cores": available_cores(), "threads": thread_count(),
                            "python": platform.python_version(), "quick": bool(quick)}}
@@ -301,8 +335,7 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
         print(f"cost-model calibration written to {calibration_path()} (used by eddybox check "
               "and estimate)")
     if json_path:
-        with open(json_path, "w") as fh:
-            json.dump(results, fh, indent=2, default=float)
+        _write_json(json_path, results)
         print(f"figures written to {json_path}")
     return 0
 
