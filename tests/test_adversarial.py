@@ -302,6 +302,12 @@ def _bench_json_over_users_file(c, mp):
     return ["bench", "--section", "estimate", "--quick", "--json", str(c.root / "results.json")]
 
 
+def _sweep_over_users_status_file(c, mp):
+    (c.root / "s").mkdir()
+    (c.root / "s" / "sweep_status.json").write_text('{"my": "notes"}')
+    return _sweep()(c, mp)
+
+
 def _sweep(*extra):
     """`eddybox sweep` of the hostile config over two seeds, with these arguments."""
     return lambda c, mp: ["sweep", c.config(), "--vary", "seed=1,2", "--out", str(c.root / "s"),
@@ -465,6 +471,7 @@ REFUSALS = [
         "--ranks", "4", "--kmax-eta", "1e12", "--calibration", str(c.root / "good-cal.json")],
      "--kmax-eta"),
     ("bench-unknown-section", lambda c, mp: ["bench", "--section", "everything"], "--section"),
+    ("sweep-over-a-users-status-file", _sweep_over_users_status_file, "sweep_status.json"),
     ("bench-json-over-a-users-file", _bench_json_over_users_file, "--json"),
 ]
 

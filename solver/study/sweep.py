@@ -233,6 +233,25 @@ def last_log_message(folder) -> str:
     return parts[2] if len(parts) == 3 else lines[-1]
 
 
+def check_bookkeeping(root, names):
+    """The sweep's own files in its folder (sweep_status.json, reference.json) are rewritten, so
+    a file of that name must be one a sweep wrote (a JSON object): a user's file is refused,
+    untouched, before anything runs."""
+    for name in names:
+        path = Path(root) / name
+        if not path.exists():
+            continue
+        try:
+            ours = path.is_file() and isinstance(json.loads(path.read_text()), dict)
+        except (OSError, ValueError, UnicodeDecodeError):
+            ours = False
+        if ours and name == STATUS_FILE:
+            ours = isinstance(json.loads(path.read_text()).get("runs"), dict)
+        if not ours:
+            raise ConfigError(f"{path}: exists and is not the sweep's own {name}; the sweep will "
+                              "not overwrite it; move it or choose another --out")
+
+
 def read_status(root) -> dict:
     try:
         data = json.loads((Path(root) / STATUS_FILE).read_text())
@@ -520,6 +539,7 @@ def run_sweep(args) -> int:
     match = refmod.parse_match(match, bool(reference))
     if root.exists() and not root.is_dir():
         raise ConfigError(f"{root}: the sweep folder exists and is not a folder")
+    check_bookkeeping(root, [STATUS_FILE] + ([refmod.RECORD_FILE] if reference else []))
     status = read_status(root)
     ref = runs[0] if runs[0].role == "reference" else None
     record = refmod.read_record(root, ref.config.hash()) if ref else None
