@@ -630,5 +630,26 @@ def test_failed_write_exit_1_names_last_good_checkpoint(tmp_path, finished, caps
     assert not changed, changed
 
 
+def test_report_on_a_full_disk_exit_1_one_line_runs_untouched(tmp_path, finished, capsys,
+                                                              monkeypatch):
+    from matplotlib.figure import Figure
+
+    case = Case(tmp_path, finished)
+    run = case.run()
+    before = _snapshot(tmp_path)
+
+    def full(self, *a, **kw):
+        raise _enospc(a[0] if a else "?")
+
+    monkeypatch.setattr(Figure, "savefig", full)
+    code = main(["report", str(run), "--out", str(tmp_path / "rep")])
+    monkeypatch.undo()
+    text = _one_line(capsys)
+    assert code == 1 and "report in" in text and "No space left on device" in text, text
+    after = _snapshot(tmp_path)
+    assert all(after.get(k) == v for k, v in before.items())  # every file that existed, as it was
+    assert not (tmp_path / "rep" / "index.html").exists()  # no page that looks complete
+
+
 def test_catalogue_size():
     assert len(REFUSALS) + len(FAULTS) >= 40

@@ -585,7 +585,17 @@ def write_report(run_dirs, out_dir, separation: float = 1.0, correction: str = "
         (out / REPORT_MARKER).touch()
     except OSError as exc:
         raise ConfigError(f"--out {out}: cannot create the report folder ({exc.strerror})") from None
+    try:
+        return _write_pages(run_dirs, names, runs, table, out, separation, correction)
+    except OSError as exc:  # a full disk, a vanished folder: one line naming the folder
+        from eddybox.solver.errors import DiskWriteError
 
+        raise DiskWriteError(f"the report in {out} is incomplete ({exc.strerror or exc}); the "
+                             "run folders are untouched") from None
+
+
+def _write_pages(run_dirs, names, runs, table, out, separation, correction) -> Path:
+    """Every figure and CSV, then index.html (last, so a page exists only when complete)."""
     plot_timeseries(runs, out / "timeseries.png")
     has_spectra = plot_spectra(runs, out / "spectra.png")
     pair_figs = []
