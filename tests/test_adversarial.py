@@ -308,6 +308,14 @@ def _sweep_over_users_status_file(c, mp):
     return _sweep()(c, mp)
 
 
+def _sweep_while_another_sweeps(c, mp):
+    from eddybox.solver.run.run_folder import RunLock
+
+    (c.root / "s").mkdir()
+    c.lock = RunLock(c.root / "s").acquire("sweep")  # this process plays the first sweep
+    return _sweep()(c, mp)
+
+
 def _sweep(*extra):
     """`eddybox sweep` of the hostile config over two seeds, with these arguments."""
     return lambda c, mp: ["sweep", c.config(), "--vary", "seed=1,2", "--out", str(c.root / "s"),
@@ -471,6 +479,7 @@ REFUSALS = [
         "--ranks", "4", "--kmax-eta", "1e12", "--calibration", str(c.root / "good-cal.json")],
      "--kmax-eta"),
     ("bench-unknown-section", lambda c, mp: ["bench", "--section", "everything"], "--section"),
+    ("sweep-while-another-sweeps", _sweep_while_another_sweeps, "a second sweep on this folder"),
     ("sweep-over-a-users-status-file", _sweep_over_users_status_file, "sweep_status.json"),
     ("bench-json-over-a-users-file", _bench_json_over_users_file, "--json"),
 ]

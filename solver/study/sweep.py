@@ -46,7 +46,7 @@ from eddybox.solver.fluid.fft import available_cores
 from eddybox.solver.run import config as cfgmod
 from eddybox.solver.run.checkpoint import latest_checkpoint
 from eddybox.solver.run.config import differing_keys
-from eddybox.solver.run.run_folder import check_replaceable, refuse_if_locked
+from eddybox.solver.run.run_folder import RunLock, check_replaceable, refuse_if_locked
 from eddybox.solver.study import reference as refmod
 from eddybox.solver.study.comparison import NOT_CONVERGED, correlated, flag_family
 
@@ -539,6 +539,8 @@ def run_sweep(args) -> int:
     match = refmod.parse_match(match, bool(reference))
     if root.exists() and not root.is_dir():
         raise ConfigError(f"{root}: the sweep folder exists and is not a folder")
+    if root.is_dir():
+        refuse_if_locked(str(root), "a second sweep on this folder")
     check_bookkeeping(root, [STATUS_FILE] + ([refmod.RECORD_FILE] if reference else []))
     status = read_status(root)
     ref = runs[0] if runs[0].role == "reference" else None
@@ -553,48 +555,52 @@ def run_sweep(args) -> int:
     threads = threads_per_run()
     jobs = args.jobs or max(1, available_cores() // threads)
     root.mkdir(parents=True, exist_ok=True)
-    status.update(config=os.path.abspath(args.config), vary=list(args.vary), set=list(args.set or []),
-                  reference=list(reference), match=list(match))
-    for r in runs:
-        if r.action == "skip":
-            r.status = "skipped"
-            r.code = status["runs"].get(r.name, {}).get("exit", 0)
-        status["runs"].setdefault(r.name, {"values": r.values})
-    write_status(root, status)
-    for note in notes:
-        print(note)
-    first = [r for r in runs if r.role != "dependent"]
-    later = [r for r in runs if r.role == "dependent"]
-    todo = sum(r.action != "skip" for r in runs)
-    waiting = len(later) if record is None else 0
-    print(f"sweep: {len(runs)} runs in {root}, {'up to ' if waiting else ''}{todo} to run, "
-          f"{min(jobs, max(todo, 1))} at a time with {threads} thread(s) each"
-          + (f"; {waiting} wait for the reference" if waiting else ""))
-    interrupted = execute(args.config, first, root, jobs, threads, status)
-    problem = None
-    if later and not interrupted:
-        problem, record = _reference_values(ref, root, record)
-        if problem is None:
-            for r in later:
-                if not r.resolved:
-                    _resolve(r, record, match)
-                    r.action = decide_action(r, status["runs"].get(r.name))
-                    if r.action == "skip":
-                        r.status, r.code = "skipped", status["runs"].get(r.name, {}).get("exit", 0)
-                _record_resolved(status, r)
-            write_status(root, status)
-            interrupted = execute(args.config, later, root, jobs, threads, status)
-        else:
-            for r in later:
-                r.status = "not started (reference)"
-    print(summary_table(runs, list(runs[-1].values), correction=getattr(args, "correction", "holm")))
-    if problem:
-        print(f"sweep: {problem}")
-    print(f"compare the runs with: eddybox report {root}/*/ --out {root}-report")
-    sys.stdout.flush()
-    if interrupted:
-        return EXIT_STOPPED
-    return 0 if all(r.code == 0 for r in runs) else 1
+    lock = RunLock(root).acquire("sweep")  # a second sweep on this folder is refused (exit 2)
+    try:
+        status.update(config=os.path.abspath(args.config), vary=list(args.vary), set=list(args.set or []),
+                      reference=list(reference), match=list(match))
+        for r in runs:
+            if r.action == "skip":
+                r.status = "skipped"
+                r.code = status["runs"].get(r.name, {}).get("exit", 0)
+            status["runs"].setdefault(r.name, {"values": r.values})
+        write_status(root, status)
+        for note in notes:
+            print(note)
+        first = [r for r in runs if r.role != "dependent"]
+        later = [r for r in runs if r.role == "dependent"]
+        todo = sum(r.action != "skip" for r in runs)
+        waiting = len(later) if record is None else 0
+        print(f"sweep: {len(runs)} runs in {root}, {'up to ' if waiting else ''}{todo} to run, "
+              f"{min(jobs, max(todo, 1))} at a time with {threads} thread(s) each"
+              + (f"; {waiting} wait for the reference" if waiting else ""))
+        interrupted = execute(args.config, first, root, jobs, threads, status)
+        problem = None
+        if later and not interrupted:
+            problem, record = _reference_values(ref, root, record)
+            if problem is None:
+                for r in later:
+                    if not r.resolved:
+                        _resolve(r, record, match)
+                        r.action = decide_action(r, status["runs"].get(r.name))
+                        if r.action == "skip":
+                            r.status, r.code = "skipped", status["runs"].get(r.name, {}).get("exit", 0)
+                    _record_resolved(status, r)
+                write_status(root, status)
+                interrupted = execute(args.config, later, root, jobs, threads, status)
+            else:
+                for r in later:
+                    r.status = "not started (reference)"
+        print(summary_table(runs, list(runs[-1].values), correction=getattr(args, "correction", "holm")))
+        if problem:
+            print(f"sweep: {problem}")
+        print(f"compare the runs with: eddybox report {root}/*/ --out {root}-report")
+        sys.stdout.flush()
+        if interrupted:
+            return EXIT_STOPPED
+        return 0 if all(r.code == 0 for r in runs) else 1
+    finally:
+        lock.release()
 
 
 def _resolve(run: SweepRun, record: dict, match):
