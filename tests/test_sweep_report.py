@@ -113,6 +113,12 @@ def test_second_invocation_skips_completed_runs(swept, config_file, capsys):
     assert before == {n: os.stat(swept / n / "fluid.h5").st_mtime_ns for n in NAMES}
 
 
+def test_inspect_on_the_sweep_folder_points_at_its_runs(swept, capsys):
+    assert main(["inspect", str(swept)]) == 2
+    err = capsys.readouterr().err
+    assert "a folder of 2 runs, not a run folder" in err and str(swept / NAMES[0]) in err
+
+
 def test_folder_states_decide_the_action(swept, config_file, tmp_path):
     from eddybox.solver.study.sweep import decide_action
 

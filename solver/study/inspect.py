@@ -220,6 +220,12 @@ def inspect_path(path, datasets=False) -> str:
         files = [n for n in ("fluid.h5", "particles.h5", "pairs.h5", "collisions.h5")
                  if os.path.exists(os.path.join(path, n))]
         if not files and not os.path.exists(os.path.join(path, "config.yaml")):
+            runs = sorted(e.name for e in os.scandir(path) if e.is_dir()
+                          and os.path.exists(os.path.join(e.path, "config.yaml")))
+            if runs:  # a sweep's folder, or any folder of runs: point at them
+                shown = ", ".join(os.path.join(path, r) for r in runs[:3])
+                raise ConfigError(f"{path}: a folder of {len(runs)} runs, not a run folder; "
+                                  f"inspect one of them ({shown}{', ...' if len(runs) > 3 else ''})")
             raise ConfigError(f"{path}: not an eddybox run folder (no config.yaml or output files)")
         holder = lock_holder(path)
         if holder is not None:
