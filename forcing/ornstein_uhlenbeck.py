@@ -59,7 +59,9 @@ class OrnsteinUhlenbeckForcing(Forcing):
         flow and forgets it geometrically), then g_j = 1/m for the m-th interval after them;
         at t_c, sigma^2 = the mean of sigma^2 over the last 9 updates.
 
-    The calibrated variance is uncertain by the standard error of the mean power over the
+    Recorded in derived.forcing_calibration: the variance, the window, the power the window
+    reached (`window_mean_power`, the dissipation during the calibration), and the calibrated
+    variance's uncertainty: the standard error of the mean power over the
     window (recorded as `relative_error`; blocking of the per-step power after the spin-up;
     `relative_error_established` is false, and the log says so, when the blocking found no
     plateau, where the error reads low: at 32^3 windows of 45 T_F after the spin-up still had
@@ -228,6 +230,13 @@ class OrnsteinUhlenbeckForcing(Forcing):
             return float("nan")
         return float(block_average(p).stderr / p.mean())
 
+    def _window_mean_power(self) -> float:
+        """The mean injected power <f.u> over the window after the spin-up: the dissipation the
+        calibration reached there (equal to eps in a stationary state). The stationary eps after
+        the window is the report's and sweep's eps row, measured from t = window_end."""
+        p = np.asarray(self._rm_power, float)
+        return float(p.mean()) if p.size and np.all(np.isfinite(p)) else float("nan")
+
     def _error_established(self) -> bool:
         """Whether the blocking of the window's power reached its plateau (block sizes beyond the
         correlation time with blocks to spare); if not, `relative_error` reads low. Recomputed
@@ -249,7 +258,8 @@ class OrnsteinUhlenbeckForcing(Forcing):
                            updates=int(self.updates),
                            factor_over_eswaran_pope=self.sigma2 / self.sigma2_initial,
                            relative_error=self.calibration_error,
-                           relative_error_established=self._error_established())
+                           relative_error_established=self._error_established(),
+                           window_mean_power=self._window_mean_power())
             out["forcing_calibration"] = cal
         return out
 

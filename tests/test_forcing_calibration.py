@@ -174,6 +174,8 @@ def test_calibrated_ou_meets_its_target_dissipation(matched_runs, t_f):
     est = block_average(eps[t > cal["window_end"]], spacing=0.1)
     err = np.hypot(est.stderr, cal["relative_error"] * 0.1)
     assert 0 < cal["relative_error"] < 0.05
+    # the power the calibration reached over its window is the target within its own error
+    assert abs(cal["window_mean_power"] / cal["target_dissipation"] - 1) < 3 * cal["relative_error"]
     assert isinstance(cal["relative_error_established"], bool)  # True at 1/4 T_E here, False at
     # 1 and 4 T_E (blocking finds no plateau within 45 T_F), yet within 5 % and 2 errors
     assert abs(est.mean / 0.1 - 1) < 0.05, (t_f, est.mean, est.stderr, cal["relative_error"])
