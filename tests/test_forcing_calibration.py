@@ -114,8 +114,16 @@ def test_calibration_is_recorded_and_frozen(config_factory):
     assert len(set(var[t < 2.0])) > 5  # adjusted during the window
     log = open(sim.out + "/log.txt").read()
     assert "forcing calibrated at t=" in log
-    # a window of 4 T_F: the blocking of its power cannot plateau, and the record says so
-    assert cal["relative_error_established"] is False and "that error may read low" in log
+    # a window of 4 T_F: the blocking of its power cannot plateau, and the record says so; the
+    # error is then the forcing-time floor s_P sqrt(T_F / W) (ornstein_uhlenbeck._error_parts)
+    assert cal["relative_error_established"] is False and "found no plateau" in log
+    assert cal["relative_error_from"] == "forcing time scale" and "the floor from the" in log
+    p = np.asarray(sim.forcing._rm_power)  # the per-step power after the spin-up
+    blocking = block_average(p).stderr / p.mean()
+    # a square of an OU process decorrelates over T_F/2 (Isserlis 1918): with W = 1.5 the
+    # window after the spin-up (18 of 24 intervals of 2.0) the floor is s_P sqrt(T_F / W)
+    floor = np.std(p, ddof=1) / p.mean() * np.sqrt(0.5 / 1.5)
+    assert floor > blocking and cal["relative_error"] == pytest.approx(floor, rel=1e-9)
 
 
 def test_restart_inside_the_calibration_window_is_bitwise(config_factory, tmp_path):
@@ -173,7 +181,7 @@ def test_calibrated_ou_meets_its_target_dissipation(matched_runs, t_f):
         t, eps = f["series/time"][...], f["series/dissipation"][...]
     est = block_average(eps[t > cal["window_end"]], spacing=0.1)
     err = np.hypot(est.stderr, cal["relative_error"] * 0.1)
-    assert 0 < cal["relative_error"] < 0.05
+    assert 0 < cal["relative_error"] < 0.10
     # the power the calibration reached over its window is the target within its own error
     assert abs(cal["window_mean_power"] / cal["target_dissipation"] - 1) < 3 * cal["relative_error"]
     assert isinstance(cal["relative_error_established"], bool)  # True at 1/4 T_E here, False at
