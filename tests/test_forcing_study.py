@@ -119,6 +119,8 @@ def test_report_draws_the_decision_figures(report):
         img = imread(out / name)
         assert img.ndim == 3 and img.shape[0] > 300 and img.shape[1] > 800
     assert "Forcing decision" in page and "Holm 1979" in page and "correlated" in page
+    # the runs table says what each OU calibration settled on, with its error and its source
+    assert page.count("σ² calibrated to") == 2 and "from forcing time scale" in page
 
 
 def test_csv_rows_for_every_stokes_number_and_run(report):

@@ -358,8 +358,18 @@ def _config_brief(cfg: dict) -> str:
     fp = ", ".join(f"{k}={v}" for k, v in f.items() if k != "kind" and v is not None)
     g = cfg.get("grid", {})
     forcing = f"{f.get('kind', '?')}({fp})" if fp else f.get("kind", "?")
-    return (f"{g.get('points', '?')}³, ν={cfg.get('fluid', {}).get('viscosity', '?')}, forcing "
-            f"{forcing}, seed {cfg.get('seed', '?')}")
+    brief = (f"{g.get('points', '?')}³, ν={cfg.get('fluid', {}).get('viscosity', '?')}, forcing "
+             f"{forcing}, seed {cfg.get('seed', '?')}")
+    cal = (cfg.get("derived") or {}).get("forcing_calibration") or {}
+    if cal.get("status") == "done":  # what the OU calibration settled on, and how sure it is
+        try:
+            source = f", from {cal['relative_error_from']}" if "relative_error_from" in cal else ""
+            brief += (f"; σ² calibrated to {float(cal['variance']):.4g} (± "
+                      f"{100 * float(cal['relative_error']):.2g} %{source}) over t ≤ "
+                      f"{float(cal['window_end']):.4g}")
+        except (KeyError, TypeError, ValueError):
+            pass  # an older or edited record: the settings alone
+    return brief
 
 
 def _bare(cfg):
