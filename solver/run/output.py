@@ -9,8 +9,10 @@ the h5netcdf engine) see named dimensions.
 from __future__ import annotations
 
 import datetime
+import json
 import os
 import re
+from pathlib import Path
 
 import h5py
 import numpy as np
@@ -95,6 +97,19 @@ def discard_temporary(path):
         os.remove(path)
     except OSError:
         pass
+
+
+def write_json_atomic(path, data, **dump_options):
+    """Write `data` as JSON to `path` through a temporary file in the same folder and a rename,
+    so a reader sees the old file or the new one, never a half-written one; the temporary file
+    is removed if the write fails."""
+    path = Path(path)
+    tmp = path.with_name(f"{path.name}.tmp{os.getpid()}")
+    try:
+        tmp.write_text(json.dumps(data, **dump_options))
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 class SampleFile:

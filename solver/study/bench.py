@@ -29,6 +29,7 @@ from pathlib import Path
 
 import numpy as np
 
+from eddybox.solver.run.output import write_json_atomic
 from eddybox.solver.study.calibration import (
     benchmark_simulation,
     best_time,
@@ -284,16 +285,6 @@ def _check_json_target(path):
         raise ConfigError(f"--json {path}: cannot write there (no such folder, or not writable)")
 
 
-def _write_json(path, results):
-    """Write the figures atomically: an earlier file is replaced only by a complete one."""
-    tmp = Path(f"{path}.tmp{os.getpid()}")
-    try:
-        tmp.write_text(json.dumps(results, indent=2, default=float))
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def run_bench(quick=False, json_path=None, sections=None) -> int:
     import platform
 
@@ -335,7 +326,7 @@ def run_bench(quick=False, json_path=None, sections=None) -> int:
         print(f"cost-model calibration written to {calibration_path()} (used by eddybox check "
               "and estimate)")
     if json_path:
-        _write_json(json_path, results)
+        write_json_atomic(json_path, results, indent=2, default=float)
         print(f"figures written to {json_path}")
     return 0
 

@@ -14,6 +14,7 @@ import numpy as np
 
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.fluid.fft import cache_dir, thread_count
+from eddybox.solver.run.output import write_json_atomic
 
 CALIBRATION_FILE = "calibration.json"
 #: stages per step of each scheme
@@ -257,9 +258,7 @@ def save_calibration(cal, path=None):
     """Write `cal` atomically (a reader sees the old file or the new one)."""
     path = path or calibration_path()
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
-    tmp.write_text(json.dumps(cal, indent=2))
-    os.replace(tmp, path)
+    write_json_atomic(path, cal, indent=2)
 
 
 def machine_calibration():

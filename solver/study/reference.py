@@ -26,7 +26,6 @@ from __future__ import annotations
 import datetime
 import json
 import math
-import os
 from pathlib import Path
 
 import numpy as np
@@ -35,6 +34,7 @@ import yaml
 from eddybox.forcing import FORCINGS
 from eddybox.solver.errors import ConfigError
 from eddybox.solver.run import scales
+from eddybox.solver.run.output import write_json_atomic
 
 NAME = "reference"
 RECORD_FILE = "reference.json"
@@ -143,10 +143,7 @@ def read_record(root, config_hash: str) -> dict | None:
 
 def write_record(root, record: dict):
     """Atomic write of SWEEP/reference.json."""
-    path = Path(root) / RECORD_FILE
-    tmp = path.with_suffix(f".tmp{os.getpid()}")
-    tmp.write_text(json.dumps(record, indent=1, sort_keys=True))
-    os.replace(tmp, path)
+    write_json_atomic(Path(root) / RECORD_FILE, record, indent=1, sort_keys=True)
 
 
 def resolve(config, record: dict, match) -> tuple[object, dict]:

@@ -46,6 +46,7 @@ from eddybox.solver.fluid.fft import available_cores
 from eddybox.solver.run import config as cfgmod
 from eddybox.solver.run.checkpoint import latest_checkpoint
 from eddybox.solver.run.config import differing_keys
+from eddybox.solver.run.output import write_json_atomic
 from eddybox.solver.run.run_folder import RunLock, check_replaceable, refuse_if_locked
 from eddybox.solver.study import reference as refmod
 from eddybox.solver.study.comparison import NOT_CONVERGED, correlated, flag_family
@@ -242,11 +243,10 @@ def check_bookkeeping(root, names):
         if not path.exists():
             continue
         try:
-            ours = path.is_file() and isinstance(json.loads(path.read_text()), dict)
+            data = json.loads(path.read_text()) if path.is_file() else None
         except (OSError, ValueError, UnicodeDecodeError):
-            ours = False
-        if ours and name == STATUS_FILE:
-            ours = isinstance(json.loads(path.read_text()).get("runs"), dict)
+            data = None
+        ours = isinstance(data, dict) and (name != STATUS_FILE or isinstance(data.get("runs"), dict))
         if not ours:
             raise ConfigError(f"{path}: exists and is not the sweep's own {name}; the sweep will "
                               "not overwrite it; move it or choose another --out")
@@ -262,10 +262,7 @@ def read_status(root) -> dict:
 
 def write_status(root, status: dict):
     """Atomic rewrite of sweep_status.json (temporary file + rename)."""
-    path = Path(root) / STATUS_FILE
-    tmp = path.with_suffix(f".tmp{os.getpid()}")
-    tmp.write_text(json.dumps(status, indent=1, sort_keys=True))
-    os.replace(tmp, path)
+    write_json_atomic(Path(root) / STATUS_FILE, status, indent=1, sort_keys=True)
 
 
 def _saved_config(folder):
