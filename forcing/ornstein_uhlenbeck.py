@@ -214,8 +214,8 @@ class OrnsteinUhlenbeckForcing(Forcing):
         self._set_variance(float(np.mean(done[len(done) // 2:])))
         self.calibrating = False
         self.calibrated_at = float(t_end)
-        self.calibration_error = self._relative_error()
         blocking, floor, reliable = self._error_parts()
+        self.calibration_error = max(blocking, floor) if math.isfinite(blocking) else float("nan")
         caveat = "" if blocking >= floor else (f"; the floor from the forcing time scale, above "
                                                f"the blocking error {100 * blocking:.2g} %")
         if not reliable:
@@ -228,7 +228,10 @@ class OrnsteinUhlenbeckForcing(Forcing):
 
     def _error_parts(self) -> tuple[float, float, bool]:
         """(blocking error, forcing-time floor, blocking reached its plateau), each relative to
-        the mean injected power P over the updates after the spin-up.
+        the mean injected power P over the updates after the spin-up. The calibrated variance is
+        uncertain by the larger of the two errors (P about proportional to sigma^2 carries it
+        over to the variance and to the stationary eps the run will reach). Computed from the
+        stored power series, so a restart gives the same answer.
 
         Blocking (Flyvbjerg & Petersen 1989) of the per-step power sees correlations only up to
         a fraction of the window. The floor assumes the power stays correlated for at least
@@ -247,30 +250,12 @@ class OrnsteinUhlenbeckForcing(Forcing):
         floor = float(np.std(p, ddof=1) / p.mean() * math.sqrt(self.T / window))
         return float(b.stderr / p.mean()), floor, bool(b.reliable)
 
-    def _relative_error(self) -> float:
-        """Relative uncertainty of the calibrated variance: the larger of the blocking error of
-        the mean power over the window after the spin-up and the forcing-time floor
-        (:meth:`_error_parts`); P about proportional to sigma^2 carries it over to the variance
-        and to the stationary dissipation the run will reach."""
-        blocking, floor, _ = self._error_parts()
-        return max(blocking, floor) if math.isfinite(blocking) else float("nan")
-
     def _window_mean_power(self) -> float:
         """The mean injected power <f.u> over the window after the spin-up: the dissipation the
         calibration reached there (equal to eps in a stationary state). The stationary eps after
         the window is the report's and sweep's eps row, measured from t = window_end."""
         p = np.asarray(self._rm_power, float)
         return float(p.mean()) if p.size and np.all(np.isfinite(p)) else float("nan")
-
-    def _error_established(self) -> bool:
-        """Whether the blocking of the window's power reached its plateau (block sizes beyond the
-        correlation time with blocks to spare). Recomputed from the stored power series, so a
-        restart gives the same answer."""
-        return self._error_parts()[2]
-
-    def _error_source(self) -> str:
-        blocking, floor, _ = self._error_parts()
-        return "blocking" if blocking >= floor else "forcing time scale"
 
     def derived(self) -> dict:
         out = {"forcing_variance_eswaran_pope": self.sigma2_initial}
@@ -280,12 +265,13 @@ class OrnsteinUhlenbeckForcing(Forcing):
             if self.calibrated_at is None:
                 cal["status"] = "in progress"
             else:
+                blocking, floor, reliable = self._error_parts()
                 cal.update(status="done", window_end=self.calibrated_at, variance=self.sigma2,
                            updates=int(self.updates),
                            factor_over_eswaran_pope=self.sigma2 / self.sigma2_initial,
                            relative_error=self.calibration_error,
-                           relative_error_from=self._error_source(),
-                           relative_error_established=self._error_established(),
+                           relative_error_from="blocking" if blocking >= floor else "forcing time scale",
+                           relative_error_established=reliable,
                            window_mean_power=self._window_mean_power())
             out["forcing_calibration"] = cal
         return out
