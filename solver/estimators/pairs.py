@@ -37,6 +37,7 @@ __all__ = [
     "RatioEstimate",
     "Window",
     "pooled_ratio",
+    "linearised_ratio",
     "ratio_estimate",
     "quotient_estimate",
     "pooled_means",
@@ -87,6 +88,17 @@ def pooled_ratio(num, den) -> np.ndarray:
         return np.where(d != 0, n / np.where(d != 0, d, 1.0), np.nan)
 
 
+def linearised_ratio(num, den) -> tuple[np.ndarray, np.ndarray]:
+    """(R, z): the pooled ratio R = Σ num / Σ den along axis 0 and its delta-method samples
+    z_i = (num_i − R den_i) / mean(den), whose mean has the error of R (Cochran 1977, Sampling
+    Techniques, §6.3; from memory). NaN where Σ den = 0."""
+    y = np.asarray(num, dtype=float)
+    x = np.broadcast_to(np.asarray(den, dtype=float), y.shape)
+    r = pooled_ratio(y, x)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return r, (y - r * x) / x.mean(axis=0)
+
+
 def ratio_estimate(num, den, rule: str = "plateau") -> RatioEstimate:
     """Pooled ratio R = Σ num / Σ den along axis 0 (samples) with its standard error.
 
@@ -101,14 +113,12 @@ def ratio_estimate(num, den, rule: str = "plateau") -> RatioEstimate:
     if flat:
         y, x = y[:, None], x[:, None]
     n = y.shape[0]
-    value = pooled_ratio(y, x)
+    value, z = linearised_ratio(y, x)
     ok = np.isfinite(value)
     err = np.full(value.shape, np.nan)
     reliable = np.zeros(value.shape, dtype=bool)
     if n >= 2 and ok.any():
-        xbar = x[:, ok].mean(axis=0)
-        z = (y[:, ok] - value[ok] * x[:, ok]) / xbar
-        ba = timeseries.block_average(z, rule=rule)
+        ba = timeseries.block_average(z[:, ok], rule=rule)
         err[ok] = ba.stderr
         reliable[ok] = ba.reliable
     if flat:

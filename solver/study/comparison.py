@@ -16,7 +16,7 @@ import math
 import numpy as np
 
 from eddybox.solver.estimators import significance as sig
-from eddybox.solver.estimators.pairs import RATIOS
+from eddybox.solver.estimators.pairs import RATIOS, linearised_ratio
 from eddybox.solver.estimators.timeseries import mser_truncation, uniform_samples
 from eddybox.solver.study.readers import PairSeries, averaging_window, nearest_bin
 
@@ -90,14 +90,9 @@ def _missing(note) -> sig.Difference:
 
 
 def _linearised(num, den):
-    """(R, z): the pooled ratio R = Σnum/Σden and the delta-method samples z_i = (num_i −
-    R den_i)/mean(den), whose mean has the error of R (Cochran 1977, Sampling Techniques §6.3,
-    from memory; as estimators.pairs.ratio_estimate)."""
-    total = den.sum()
-    if not total > 0:
-        return math.nan, np.full(num.shape, np.nan)
-    r = num.sum() / total
-    return float(r), (num - r * den) / den.mean()
+    """(R, z) of one bin's sample series: estimators.pairs.linearised_ratio, R as a float."""
+    r, z = linearised_ratio(num, den)
+    return float(r), z
 
 
 def _ratio_error(num, den) -> sig.MeanError:
